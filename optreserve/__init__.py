@@ -1,0 +1,38 @@
+"""optreserve: least-cost primary reserve headroom and governor droop allocation.
+
+    import optreserve
+    case = optreserve.load_case("instances/demo")
+    result = optreserve.solve(case)
+    result.allocation, result.events, result.links   # pandas DataFrames
+    result.write("out/demo")
+
+Results are planning studies, not operating instructions.
+"""
+
+__version__ = "0.1.0"
+
+from .case import Case  # noqa: E402
+from .errors import (  # noqa: E402
+    CaseError,
+    InfeasibleError,
+    OptreserveError,
+    SolverError,
+    VerificationError,
+)
+from .reader import load_case  # noqa: E402
+from .results import Result  # noqa: E402
+from .screen import event_capability  # noqa: E402
+from .solve import solve  # noqa: E402
+
+__all__ = [
+    "Case",
+    "CaseError",
+    "InfeasibleError",
+    "OptreserveError",
+    "Result",
+    "SolverError",
+    "VerificationError",
+    "event_capability",
+    "load_case",
+    "solve",
+]

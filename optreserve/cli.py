@@ -1,0 +1,222 @@
+"""Command line: a thin shell over the Python API. Only here do errors become exit codes."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from pathlib import Path
+
+from . import __version__
+from .errors import CaseError, InfeasibleError, OptreserveError
+from .reader import load_case
+from .results import CAUTION, Result, write_table
+from .screen import event_capability
+
+EXIT_OK, EXIT_OTHER, EXIT_INPUT, EXIT_INFEASIBLE = 0, 1, 2, 3
+
+
+def _table(headers: list[str], rows: list[list[str]], right: set[int] | None = None) -> str:
+    """Aligned plain-text table; columns in `right` are right-aligned (numbers)."""
+    right = right or set()
+    widths = [max(len(h), *(len(r[k]) for r in rows)) if rows else len(h)
+              for k, h in enumerate(headers)]
+
+    def fmt(cells):
+        return "  ".join(c.rjust(w) if k in right else c.ljust(w)
+                         for k, (c, w) in enumerate(zip(cells, widths))).rstrip()
+
+    return "\n".join([fmt(headers), fmt(["-" * w for w in widths])] + [fmt(r) for r in rows])
+
+
+def _warn(case, quiet: bool) -> None:
+    if not quiet:
+        for w in case.warnings:
+            print(f"warning: {w}", file=sys.stderr)
+
+
+# ------------------------------------------------------------------ check
+def cmd_check(args) -> int:
+    case = load_case(args.case)
+    _warn(case, args.quiet)
+    u, ev = case.units, case.events
+    n_under = int((ev["size_mw"] > 0).sum())
+    n_over = int((ev["size_mw"] < 0).sum())
+    print(f"case {case.name!r}: {len(u)} units ({int(u['provides'].sum())} may provide), "
+          f"{len(case.areas)} areas, {len(case.links)} links, {len(ev)} events "
+          f"({n_under} under-frequency, {n_over} over-frequency)")
+    lim = case.limits
+    print(f"limits: settled deviation {lim.max_settled_deviation_hz * 1000:.0f} mHz, full "
+          f"activation at {lim.full_activation_deviation_hz * 1000:.0f} mHz; droop "
+          + ("steps " + ", ".join(f"{s:g}" for s in case.droop.steps_pct) + " %"
+             if case.droop.steps_pct else "continuous inside each band"))
+    cap = event_capability(case)
+    rows = []
+    for r in cap.itertuples():
+        ratio = r.offered_gain_mw_per_hz / r.needed_gain_mw_per_hz if r.needed_gain_mw_per_hz \
+            else float("inf")
+        rows.append([str(r.event), f"{r.size_mw:.1f}", f"{r.needed_gain_mw_per_hz:.1f}",
+                     f"{r.offered_gain_mw_per_hz:.1f}",
+                     "ok" if r.short_mw <= 0 else f"SHORT {r.short_mw:.1f} MW",
+                     f"{ratio:.2f}"])
+    print(_table(["event", "size MW", "needs MW/Hz", "can offer MW/Hz", "", "ratio"], rows,
+                 {1, 2, 3, 5}))
+    short = cap[cap["short_mw"] > 0]
+    if len(short):
+        print(f"{len(short)} event(s) cannot be met even with every provider at its highest "
+              "gain", file=sys.stderr)
+        return EXIT_INFEASIBLE
+    print("case is valid")
+    return EXIT_OK
+
+
+# ------------------------------------------------------------------ solve
+def cmd_solve(args) -> int:
+    from .solve import solve
+
+    t0 = time.perf_counter()
+    out_dir = Path(args.out) if args.out else None
+    if out_dir is not None and out_dir.is_dir() and any(out_dir.iterdir()) and not args.force:
+        raise _OutputBusy(out_dir)
+    case = load_case(args.case)
+    _warn(case, args.quiet)
+    try:
+        result = solve(case, engine=args.engine, time_limit=args.time_limit,
+                       mip_gap=args.mip_gap, relax=args.relax, verbose=args.verbose)
+    except InfeasibleError as exc:
+        if out_dir is not None and exc.diagnosis is not None:
+            _write_diagnosis(exc, out_dir, args.force)
+        raise
+    if out_dir is not None:
+        result.write(out_dir, force=args.force)
+    result.timings_s["total"] = time.perf_counter() - t0
+    if not args.quiet:
+        _print_result(result, out_dir)
+    return EXIT_OK
+
+
+class _OutputBusy(OptreserveError):
+    exit_code = EXIT_INPUT
+
+    def __init__(self, out: Path):
+        super().__init__(f"{out}: folder is not empty; choose another --out or add --force to "
+                         "replace optreserve's files in it")
+
+
+def _write_diagnosis(exc: InfeasibleError, out_dir: Path, force: bool) -> None:
+    import shutil
+    import tempfile
+
+    out_dir.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.", dir=out_dir.parent))
+    try:
+        write_table(exc.diagnosis, tmp / "diagnosis.csv")
+        if not out_dir.exists():
+            tmp.rename(out_dir)
+        else:
+            (tmp / "diagnosis.csv").replace(out_dir / "diagnosis.csv")
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
+def _print_result(result: Result, out_dir: Path | None) -> None:
+    s = result.summary
+    gap = f", gap {s['mip_gap'] * 100:.3f} %" if s["mip_gap"] is not None else ""
+    print(f"case {s['case']!r}: {s['status']}, cost {s['objective_per_h']:.2f} per hour{gap}")
+    print(f"{s['units_providing']} of {len(result.allocation)} units provide; headroom "
+          f"{s['headroom_up_mw']:.1f} MW up, {s['headroom_down_mw']:.1f} MW down")
+    rows = []
+    for r in result.events.itertuples():
+        margin = (r.limit_hz - abs(r.settled_deviation_hz)) * 1000
+        price = r.marginal_cost_per_mw_h
+        rows.append([str(r.event), str(r.kind), f"{r.size_mw:.1f}",
+                     f"{r.settled_frequency_hz:.4f}", f"{r.settled_deviation_hz * 1000:+.1f}",
+                     f"{margin:.1f}", "yes" if r.binding else "",
+                     "" if price != price else f"{price:.3f}"])
+    print(_table(["event", "kind", "size MW", "settles Hz", "dev mHz", "margin mHz", "binding",
+                  "price /MW/h"], rows, {2, 3, 4, 5, 7}))
+    bl = result.binding_links
+    if len(bl):
+        print("binding links: " + "; ".join(
+            f"{r.link} after {r.event} ({r.flow_after_mw:+.1f} of {r.limit_mw:.0f} MW)"
+            for r in bl.itertuples()))
+    else:
+        lk = result.links
+        if len(lk):
+            top = lk.loc[lk["loading_pct"].idxmax()]
+            print(f"no link at its limit; highest loading {top['loading_pct']:.1f} % "
+                  f"({top['link']} after {top['event']})")
+    t = s["timings_s"]
+    print("time: " + ", ".join(f"{k} {v:.2f} s" for k, v in t.items()))
+    if out_dir is not None:
+        print(f"wrote {out_dir}: allocation.csv events.csv links.csv summary.json")
+    print(CAUTION)
+
+
+# ------------------------------------------------------------------ entry point
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="optreserve",
+        description="Least-cost primary reserve headroom and governor droop so that every "
+                    "listed disturbance settles inside the permitted frequency deviation "
+                    "without overloading a tie line.",
+        epilog=CAUTION)
+    p.add_argument("--version", action="version", version=f"optreserve {__version__}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    c = sub.add_parser("check", help="validate a case and screen each event",
+                       description="Validate a case folder and show, per event, the gain the "
+                                   "settled limit needs against the most the case can offer.")
+    c.add_argument("case", metavar="CASE", help="case folder (case.toml, units.csv, ...)")
+    c.add_argument("--quiet", action="store_true", help="no warnings")
+    c.set_defaults(func=cmd_check)
+
+    s = sub.add_parser("solve", help="optimise droop and headroom",
+                       description="Optimise every unit's droop and headroom; print a summary "
+                                   "and, with --out, write allocation.csv, events.csv, "
+                                   "links.csv and summary.json.")
+    s.add_argument("case", metavar="CASE", help="case folder")
+    s.add_argument("--out", metavar="DIR", help="folder for the result files")
+    s.add_argument("--force", action="store_true",
+                   help="write into a non-empty --out folder (only optreserve's files change)")
+    s.add_argument("--engine", choices=["auto", "pyomo", "highspy"], default="auto",
+                   help="how HiGHS receives the model: Pyomo model, bulk highspy load, or auto "
+                        "(Pyomo for small models); default auto")
+    s.add_argument("--time-limit", type=float, metavar="S", help="solver time limit, seconds "
+                   "(overrides case.toml)")
+    s.add_argument("--mip-gap", type=float, metavar="G", help="relative MIP gap (overrides "
+                   "case.toml)")
+    s.add_argument("--relax", action="store_true", help="solve the LP relaxation (no integer "
+                   "participation or droop steps)")
+    s.add_argument("--verbose", action="store_true", help="show the HiGHS log")
+    s.add_argument("--quiet", action="store_true", help="print nothing on success")
+    s.set_defaults(func=cmd_solve)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "command", None):
+        parser.print_help()
+        return EXIT_INPUT
+    try:
+        return args.func(args)
+    except CaseError as exc:
+        for p in exc.problems:
+            print(f"error: {p}", file=sys.stderr)
+        return EXIT_INPUT
+    except InfeasibleError as exc:
+        print(f"infeasible: {exc}", file=sys.stderr)
+        for line in exc.shortfalls:
+            print(f"  {line}", file=sys.stderr)
+        return EXIT_INFEASIBLE
+    except OptreserveError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("interrupted; no output written", file=sys.stderr)
+        return 130
+    except Exception as exc:  # last line of defence: one line, no traceback
+        print(f"error: unexpected {type(exc).__name__}: {exc}", file=sys.stderr)
+        return EXIT_OTHER

@@ -1,0 +1,575 @@
+"""Read and validate a case folder (contract: docs/case-format.md, version 1).
+
+Every problem is located by file, row (physical line, header = 1 when the file has no
+comment lines above it) and column. All problems found in one pass are reported together,
+up to MAX_PROBLEMS; the caller gets a CaseError and nothing else happens.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+import re
+import time
+import tomllib
+from collections import deque
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+import pandas as pd
+
+from .case import Case, DroopSettings, Limits, SolverSettings
+from .errors import CaseError, Problem
+
+MAX_PROBLEMS = 50
+
+# Common practice: governor droop settings between 2 % and 12 %; dead bands above 50 mHz are
+# far outside what grid codes accept for frequency-containment providers.
+DROOP_WARN_LOW_PCT, DROOP_WARN_HIGH_PCT = 2.0, 12.0
+DEADBAND_WARN_MHZ = 50.0
+
+TRUE_WORDS = {"true", "1", "yes", "y", "t"}
+FALSE_WORDS = {"false", "0", "no", "n", "f"}
+
+
+class _TooMany(Exception):
+    pass
+
+
+class _Collector:
+    def __init__(self) -> None:
+        self.problems: list[Problem] = []
+        self.warnings: list[str] = []
+        self.dropped = 0
+
+    def error(self, file: str, message: str, row: int | None = None, column: str | None = None):
+        if len(self.problems) >= MAX_PROBLEMS:
+            self.dropped += 1
+            return
+        self.problems.append(Problem(file, message, row, column))
+
+    def warn(self, file: str, message: str, row: int | None = None, column: str | None = None):
+        self.warnings.append(str(Problem(file, message, row, column)))
+
+    def raise_if_any(self) -> None:
+        if self.problems:
+            probs = list(self.problems)
+            if self.dropped:
+                probs.append(Problem(probs[-1].file, f"... and {self.dropped} more problems"))
+            raise CaseError(probs)
+
+
+# --------------------------------------------------------------------------- columns
+@dataclass(frozen=True)
+class Col:
+    name: str
+    kind: str  # "id", "text", "float", "bool"
+    required: bool = False
+    default: Any = None
+    check: Callable[[float], str | None] | None = None  # returns a message when bad
+
+
+def _positive(v: float) -> str | None:
+    return None if v > 0 else "must be > 0"
+
+
+def _nonneg(v: float) -> str | None:
+    return None if v >= 0 else "must be >= 0"
+
+
+UNIT_COLS = [
+    Col("unit", "id", True),
+    Col("area", "text", True),
+    Col("capacity_mw", "float", True, check=_positive),
+    Col("output_mw", "float", True),
+    Col("min_output_mw", "float", False, 0.0),
+    Col("droop_min_pct", "float", True, check=_positive),
+    Col("droop_max_pct", "float", True, check=_positive),
+    Col("droop_now_pct", "float", False, math.nan, check=_positive),
+    Col("deadband_mhz", "float", False, 0.0, check=_nonneg),
+    Col("reserve_up_max_mw", "float", False, math.nan, check=_nonneg),
+    Col("reserve_down_max_mw", "float", False, math.nan, check=_nonneg),
+    Col("price_up_per_mw_h", "float", False, 0.0, check=_nonneg),
+    Col("price_down_per_mw_h", "float", False, 0.0, check=_nonneg),
+    Col("provides", "bool", False, True),
+    Col("inertia_s", "float", False, math.nan, check=_nonneg),
+    Col("activation_time_s", "float", False, math.nan, check=_nonneg),
+]
+AREA_COLS = [
+    Col("area", "id", True),
+    Col("load_mw", "float", True, check=_nonneg),
+    Col("load_damping_pct_per_hz", "float", False, 0.0, check=_nonneg),
+    Col("min_own_reserve_mw", "float", False, 0.0, check=_nonneg),
+]
+LINK_COLS = [
+    Col("link", "id", True),
+    Col("from_area", "text", True),
+    Col("to_area", "text", True),
+    Col("reactance_pu", "float", True, check=_positive),
+    Col("limit_mw", "float", True, check=_positive),
+    Col("flow_mw", "float", False, 0.0),
+]
+EVENT_COLS = [
+    Col("event", "id", True),
+    Col("kind", "text", True),
+    Col("unit", "text", False, ""),
+    Col("area", "text", False, ""),
+    Col("size_mw", "float", False, math.nan),
+]
+EVENT_KINDS = ("unit_trip", "load_step")
+
+_NUM_RE = re.compile(r"^[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?$")
+
+
+@dataclass
+class _Table:
+    file: str
+    header: list[str]
+    rows: list[list[str]]
+    lines: list[int]  # physical line number of each data row
+
+
+def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        col.error(label, f"cannot be read ({exc.strerror or exc})")
+        return None
+    if raw.startswith(b"\xef\xbb\xbf"):  # spreadsheet exports often add a byte-order mark
+        raw = raw[3:]
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = raw[: exc.start].count(b"\n") + 1
+        col.error(label, "is not UTF-8 text (binary or another encoding)", row=line)
+        return None
+    if "\x00" in text:
+        line = text[: text.index("\x00")].count("\n") + 1
+        col.error(label, "contains a NUL byte: not a text CSV file", row=line)
+        return None
+    numbered = [
+        (k + 1, ln)
+        for k, ln in enumerate(text.splitlines())
+        if ln.strip() and not ln.lstrip().startswith("#")
+    ]
+    if not numbered:
+        col.error(label, "is empty: a header row is required", row=1)
+        return None
+    header_line, header_text = numbered[0]
+    header = [h.strip() for h in next(csv.reader([header_text]))]
+    if len(header) == 1 and ";" in header_text:
+        col.error(label, "uses ';' as delimiter; the case format is comma separated", header_line)
+        return None
+    seen: set[str] = set()
+    for h in header:
+        if h == "":
+            col.error(label, "empty column name in header", header_line)
+        elif h in seen:
+            col.error(label, f"column '{h}' appears twice in the header", header_line, h)
+        seen.add(h)
+    rows, lines = [], []
+    for line_no, ln in numbered[1:]:
+        cells = [c.strip() for c in next(csv.reader([ln]))]
+        if len(cells) != len(header):
+            if len(cells) > len(header) and all(c == "" for c in cells[len(header):]):
+                cells = cells[: len(header)]
+            else:
+                col.error(label, f"has {len(cells)} fields, header has {len(header)}", line_no)
+                continue
+        rows.append(cells)
+        lines.append(line_no)
+    return _Table(label, header, rows, lines)
+
+
+def _parse_float(s: str) -> float | None:
+    if not _NUM_RE.match(s):
+        return None
+    try:
+        v = float(s)
+    except ValueError:
+        return None
+    return v if math.isfinite(v) else None
+
+
+def _typed_table(t: _Table, cols: list[Col], col: _Collector) -> pd.DataFrame | None:
+    """Check header and cells; return a typed DataFrame with defaults filled, plus a line column."""
+    header_line = 1 if not t.lines else min(t.lines) - 1
+    known = {c.name for c in cols}
+    ok = True
+    for c in cols:
+        if c.required and c.name not in t.header:
+            col.error(t.file, "required column is missing", header_line, c.name)
+            ok = False
+    for h in t.header:
+        if h and h not in known:
+            col.warn(t.file, "unknown column ignored", header_line, h)
+    if not ok:
+        return None
+    pos = {h: k for k, h in enumerate(t.header)}
+    data: dict[str, list] = {c.name: [] for c in cols}
+    ids_seen: dict[str, int] = {}
+    for cells, line in zip(t.rows, t.lines):
+        for c in cols:
+            raw = cells[pos[c.name]] if c.name in pos else ""
+            if raw == "":
+                if c.required:
+                    col.error(t.file, "value is required", line, c.name)
+                data[c.name].append(c.default)
+                continue
+            if c.kind in ("id", "text"):
+                val: Any = raw
+                if c.kind == "id":
+                    if raw in ids_seen:
+                        col.error(
+                            t.file, f"duplicate id '{raw}' (first at row {ids_seen[raw]})",
+                            line, c.name,
+                        )
+                    else:
+                        ids_seen[raw] = line
+            elif c.kind == "float":
+                val = _parse_float(raw)
+                if val is None:
+                    low = raw.lower().lstrip("+-")
+                    what = "NaN/inf is not allowed" if low in ("nan", "inf", "infinity") else (
+                        "is not a finite number" if _NUM_RE.match(raw) else "is not a number")
+                    col.error(t.file, f"{what}: '{raw[:40]}'", line, c.name)
+                    val = c.default
+                elif c.check is not None and (msg := c.check(val)) is not None:
+                    col.error(t.file, f"{msg} (got {raw})", line, c.name)
+            elif c.kind == "bool":
+                low = raw.lower()
+                if low in TRUE_WORDS:
+                    val = True
+                elif low in FALSE_WORDS:
+                    val = False
+                else:
+                    col.error(t.file, f"expected true or false, got '{raw[:40]}'", line, c.name)
+                    val = c.default
+            data[c.name].append(val)
+    df = pd.DataFrame(data)
+    for c in cols:
+        if c.kind == "float":
+            df[c.name] = df[c.name].astype(float)
+        elif c.kind == "bool":
+            df[c.name] = df[c.name].astype(bool)
+        else:
+            df[c.name] = df[c.name].astype(object)
+    df["_line"] = t.lines
+    return df
+
+
+# --------------------------------------------------------------------------- case.toml
+_TOML_SCHEMA: dict[str, dict[str, str]] = {
+    "": {"name": "str", "nominal_frequency_hz": "pos"},
+    "limits": {
+        "max_settled_deviation_hz": "pos",
+        "full_activation_deviation_hz": "pos",
+        "max_nadir_deviation_hz": "pos",
+        "max_rocof_hz_per_s": "pos",
+    },
+    "droop": {"steps_pct": "poslist", "change_penalty_per_unit": "nonneg"},
+    "solver": {"time_limit_s": "pos", "mip_gap": "nonneg"},
+}
+
+
+def _toml_line(text: str, section: str, key: str) -> int | None:
+    current = ""
+    for k, ln in enumerate(text.splitlines(), start=1):
+        s = ln.strip()
+        m = re.match(r"^\[\s*([A-Za-z0-9_.\-]+)\s*\]", s)
+        if m:
+            current = m.group(1)
+            continue
+        if current == section and re.match(rf"^{re.escape(key)}\s*=", s):
+            return k
+    return None
+
+
+def _read_toml(path: Path, label: str, col: _Collector) -> dict[str, Any] | None:
+    try:
+        text = path.read_bytes().decode("utf-8-sig")
+    except OSError as exc:
+        col.error(label, f"cannot be read ({exc.strerror or exc})")
+        return None
+    except UnicodeDecodeError:
+        col.error(label, "is not UTF-8 text")
+        return None
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        m = re.search(r"line (\d+)", str(exc))
+        col.error(label, f"is not valid TOML: {str(exc).split(' (at')[0]}",
+                  int(m.group(1)) if m else None)
+        return None
+
+    out: dict[str, Any] = {}
+    for section, value in doc.items():
+        if isinstance(value, dict):
+            if section not in _TOML_SCHEMA:
+                col.warn(label, f"unknown section [{section}] ignored",
+                         _toml_line(text, "", f"[{section}]"))
+                continue
+            items = value.items()
+            sec = section
+        else:
+            items = [(section, value)]
+            sec = ""
+        for key, v in items:
+            where = f"{sec}.{key}" if sec else key
+            line = _toml_line(text, sec, key)
+            kind = _TOML_SCHEMA[sec].get(key)
+            if kind is None:
+                col.warn(label, f"unknown key '{where}' ignored", line, where)
+                continue
+            if kind == "str":
+                if not isinstance(v, str):
+                    col.error(label, "must be a string", line, where)
+                    continue
+            elif kind in ("pos", "nonneg"):
+                if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+                    col.error(label, f"must be a finite number, got {v!r}", line, where)
+                    continue
+                if kind == "pos" and v <= 0:
+                    col.error(label, f"must be > 0, got {v}", line, where)
+                    continue
+                if kind == "nonneg" and v < 0:
+                    col.error(label, f"must be >= 0, got {v}", line, where)
+                    continue
+                v = float(v)
+            elif kind == "poslist":
+                if not isinstance(v, list) or not v or not all(
+                    isinstance(x, (int, float)) and not isinstance(x, bool)
+                    and math.isfinite(x) and x > 0 for x in v
+                ):
+                    col.error(label, "must be a non-empty list of positive numbers", line, where)
+                    continue
+                v = tuple(sorted({float(x) for x in v}))
+            out[where] = v
+    return out
+
+
+# --------------------------------------------------------------------------- the folder
+def load_case(path: str | Path) -> Case:
+    """Read and validate a case folder; raise CaseError listing every problem found."""
+    t0 = time.perf_counter()
+    folder = Path(path)
+    col = _Collector()
+    if not folder.is_dir():
+        col.error(str(folder), "is not a case folder (expected a directory with case.toml)")
+        col.raise_if_any()
+
+    def lab(name: str) -> str:
+        return str(folder / name)
+
+    # case.toml
+    settings: dict[str, Any] = {}
+    if not (folder / "case.toml").is_file():
+        col.error(lab("case.toml"), "is missing")
+    else:
+        settings = _read_toml(folder / "case.toml", lab("case.toml"), col) or {}
+
+    tables: dict[str, pd.DataFrame | None] = {}
+    for name, cols, required in (
+        ("units.csv", UNIT_COLS, True),
+        ("areas.csv", AREA_COLS, True),
+        ("links.csv", LINK_COLS, False),
+        ("events.csv", EVENT_COLS, True),
+    ):
+        p = folder / name
+        if not p.is_file():
+            if required:
+                col.error(lab(name), "is missing")
+            tables[name] = None
+            continue
+        t = _read_csv(p, lab(name), col)
+        tables[name] = _typed_table(t, cols, col) if t is not None else None
+
+    for extra in sorted(folder.glob("*_by_period.csv")):
+        col.warn(lab(extra.name), "time series are not used by a single-snapshot solve; ignored")
+
+    units, areas = tables["units.csv"], tables["areas.csv"]
+    links, events = tables["links.csv"], tables["events.csv"]
+
+    if settings is not None and "limits.max_settled_deviation_hz" not in settings and (
+        folder / "case.toml"
+    ).is_file() and not any(p.file == lab("case.toml") for p in col.problems):
+        col.error(lab("case.toml"), "required key is missing", None,
+                  "limits.max_settled_deviation_hz")
+
+    # ---- cross checks (only on tables that parsed)
+    area_ids: set[str] = set(areas["area"]) if areas is not None else set()
+    if areas is not None and len(areas) == 0:
+        col.error(lab("areas.csv"), "has no rows: at least one area is required", 1)
+    if units is not None:
+        _check_units(units, lab("units.csv"), area_ids if areas is not None else None, col)
+        if len(units) == 0:
+            col.error(lab("units.csv"), "has no rows: at least one unit is required", 1)
+    if links is None:
+        links = pd.DataFrame({c.name: pd.Series(dtype=float if c.kind == "float" else object)
+                              for c in LINK_COLS})
+        links["_line"] = pd.Series(dtype=int)
+    else:
+        _check_links(links, lab("links.csv"), area_ids if areas is not None else None, col)
+    if events is not None and units is not None and areas is not None:
+        _check_events(events, lab("events.csv"), units, area_ids, col)
+        if len(events) == 0:
+            col.error(lab("events.csv"), "has no rows: at least one event is required", 1)
+    if areas is not None and len(areas) > 1 and not col.problems:
+        _check_connected(areas, links, lab("links.csv"), col)
+
+    col.raise_if_any()
+    assert units is not None and areas is not None and events is not None
+
+    f_n = settings.get("nominal_frequency_hz")
+    if f_n is None:
+        f_n = 50.0
+        col.warn(lab("case.toml"), "nominal_frequency_hz not given; 50 Hz assumed")
+    F = settings["limits.max_settled_deviation_hz"]
+    F_act = settings.get("limits.full_activation_deviation_hz", F)
+    if F_act < F:
+        col.warn(
+            lab("case.toml"),
+            f"full_activation_deviation_hz ({F_act}) is below max_settled_deviation_hz ({F}): "
+            "providers saturate beyond it, so every settled point is kept within "
+            f"{F_act} Hz (the unsaturated range)",
+        )
+    steps = settings.get("droop.steps_pct")
+    if steps is not None:
+        lo = units["droop_min_pct"].to_numpy()
+        hi = units["droop_max_pct"].to_numpy()
+        s = np.asarray(steps)
+        has = ((s[None, :] >= lo[:, None] - 1e-9) & (s[None, :] <= hi[:, None] + 1e-9)).any(1)
+        for (_, r), ok in zip(units.iterrows(), has):
+            if r["provides"] and not ok:
+                col.warn(lab("units.csv"), f"no droop step lies inside the band of unit "
+                         f"'{r['unit']}'; it cannot provide", int(r["_line"]), "droop_min_pct")
+
+    case = Case(
+        name=settings.get("name", folder.name),
+        nominal_frequency_hz=float(f_n),
+        limits=Limits(
+            max_settled_deviation_hz=F,
+            full_activation_deviation_hz=F_act,
+            max_nadir_deviation_hz=settings.get("limits.max_nadir_deviation_hz"),
+            max_rocof_hz_per_s=settings.get("limits.max_rocof_hz_per_s"),
+        ),
+        droop=DroopSettings(
+            steps_pct=steps,
+            change_penalty_per_unit=settings.get("droop.change_penalty_per_unit", 0.0),
+        ),
+        solver=SolverSettings(
+            time_limit_s=settings.get("solver.time_limit_s"),
+            mip_gap=settings.get("solver.mip_gap"),
+        ),
+        units=units.drop(columns="_line").reset_index(drop=True),
+        areas=areas.drop(columns="_line").reset_index(drop=True),
+        links=links.drop(columns="_line").reset_index(drop=True),
+        events=events.drop(columns="_line").reset_index(drop=True),
+        path=folder,
+        warnings=tuple(col.warnings),
+    )
+    return case.replace(read_time_s=time.perf_counter() - t0)
+
+
+def _check_units(u: pd.DataFrame, file: str, area_ids: set[str] | None, col: _Collector):
+    for _, r in u.iterrows():
+        line = int(r["_line"])
+        if area_ids is not None and r["area"] and r["area"] not in area_ids:
+            col.error(file, f"unknown area '{r['area']}' (not in areas.csv)", line, "area")
+        cap, out, mn = r["capacity_mw"], r["output_mw"], r["min_output_mw"]
+        if not math.isnan(cap) and not math.isnan(mn) and mn > cap:
+            col.error(file, f"min_output_mw {mn:g} exceeds capacity_mw {cap:g}", line,
+                      "min_output_mw")
+        elif not any(math.isnan(x) for x in (cap, out, mn)) and not (mn <= out <= cap):
+            col.error(file, f"output_mw {out:g} outside [min_output_mw {mn:g}, capacity_mw "
+                      f"{cap:g}]", line, "output_mw")
+        lo, hi = r["droop_min_pct"], r["droop_max_pct"]
+        if lo > 0 and hi > 0 and lo > hi:
+            col.error(file, f"droop_min_pct {lo:g} exceeds droop_max_pct {hi:g}", line,
+                      "droop_min_pct")
+        elif lo > 0 and hi > 0 and (lo < DROOP_WARN_LOW_PCT or hi > DROOP_WARN_HIGH_PCT):
+            col.warn(file, f"droop band {lo:g}-{hi:g} % lies outside the usual 2-12 %", line,
+                     "droop_min_pct" if lo < DROOP_WARN_LOW_PCT else "droop_max_pct")
+        if r["deadband_mhz"] > DEADBAND_WARN_MHZ:
+            col.warn(file, f"dead band {r['deadband_mhz']:g} mHz is over 50 mHz", line,
+                     "deadband_mhz")
+
+
+def _check_links(lk: pd.DataFrame, file: str, area_ids: set[str] | None, col: _Collector):
+    for _, r in lk.iterrows():
+        line = int(r["_line"])
+        for c in ("from_area", "to_area"):
+            if area_ids is not None and r[c] and r[c] not in area_ids:
+                col.error(file, f"unknown area '{r[c]}' (not in areas.csv)", line, c)
+        if r["from_area"] and r["from_area"] == r["to_area"]:
+            col.error(file, "from_area and to_area must differ", line, "to_area")
+        if r["limit_mw"] > 0 and abs(r["flow_mw"]) > r["limit_mw"]:
+            col.warn(file, f"pre-event flow {r['flow_mw']:g} MW already exceeds the limit", line,
+                     "flow_mw")
+
+
+def _check_events(ev: pd.DataFrame, file: str, units: pd.DataFrame, area_ids: set[str],
+                  col: _Collector):
+    unit_area = dict(zip(units["unit"], units["area"]))
+    unit_out = dict(zip(units["unit"], units["output_mw"]))
+    areas_out, sizes = [], []
+    for _, r in ev.iterrows():
+        line = int(r["_line"])
+        kind, size, area = r["kind"], r["size_mw"], r["area"]
+        if kind not in EVENT_KINDS:
+            if kind:
+                col.error(file, f"kind must be unit_trip or load_step, got '{kind}'", line, "kind")
+        elif kind == "unit_trip":
+            u = r["unit"]
+            if not u:
+                col.error(file, "a unit_trip needs a unit", line, "unit")
+            elif u not in unit_area:
+                col.error(file, f"unknown unit '{u}' (not in units.csv)", line, "unit")
+            else:
+                if area and area != unit_area[u]:
+                    col.error(file, f"area '{area}' differs from the unit's area "
+                              f"'{unit_area[u]}'", line, "area")
+                area = unit_area[u]
+                if math.isnan(size):
+                    size = unit_out[u]
+                if size == 0:
+                    col.warn(file, f"unit '{u}' trips at zero output: no disturbance", line,
+                             "size_mw")
+        else:
+            if r["unit"]:
+                col.warn(file, "unit is ignored for a load_step", line, "unit")
+            if not area:
+                col.error(file, "a load_step needs an area", line, "area")
+            elif area not in area_ids:
+                col.error(file, f"unknown area '{area}' (not in areas.csv)", line, "area")
+            if math.isnan(size):
+                col.error(file, "a load_step needs size_mw", line, "size_mw")
+            elif size == 0:
+                col.error(file, "size_mw must not be zero (> 0 demand rises, < 0 drops)", line,
+                          "size_mw")
+        areas_out.append(area)
+        sizes.append(size)
+    ev["area"] = areas_out
+    ev["size_mw"] = np.asarray(sizes, float)
+
+
+def _check_connected(areas: pd.DataFrame, links: pd.DataFrame, file: str, col: _Collector):
+    ids = list(areas["area"])
+    adj: dict[str, set[str]] = {a: set() for a in ids}
+    for f, t in zip(links["from_area"], links["to_area"]):
+        if f in adj and t in adj:
+            adj[f].add(t)
+            adj[t].add(f)
+    seen = {ids[0]}
+    todo = deque([ids[0]])
+    while todo:
+        for b in adj[todo.popleft()]:
+            if b not in seen:
+                seen.add(b)
+                todo.append(b)
+    missing = [a for a in ids if a not in seen]
+    if missing:
+        col.error(file, "areas are not all connected by links (one synchronous system is "
+                  f"required): no path from '{ids[0]}' to {', '.join(repr(m) for m in missing)}")

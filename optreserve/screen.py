@@ -1,0 +1,36 @@
+"""Quick screening of a case without optimising: per event the gain the limit needs against
+the most the case can offer (every capable provider at its highest gain)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from .case import Case
+from .model import Events, unit_data
+
+
+def event_capability(case: Case) -> pd.DataFrame:
+    """One row per event: needed and offered response at the settled limit.
+
+    needed_gain_mw_per_hz = |dP| / F (load self-regulation included on the offered side);
+    offered_gain_mw_per_hz = (sum_i K_max,i (F - d_i)^+ + F D) / F with the tripped unit out.
+    """
+    ev = Events.of(case)
+    need_up = bool((ev.sigma > 0).any())
+    need_dn = bool((ev.sigma < 0).any())
+    ud = unit_data(case, need_up, need_dn)
+    F = min(case.limits.max_settled_deviation_hz, case.limits.full_activation_deviation_hz)
+    D = case.load_damping_mw_per_hz().sum()
+    resp = ud.K_hi * np.maximum(F - ud.d_hz, 0.0)  # MW each unit can give at the limit
+    total = resp.sum()
+    offered = np.array([total - (resp[j] if j >= 0 else 0.0) for j in ev.trip]) + F * D
+    return pd.DataFrame({
+        "event": ev.names,
+        "size_mw": case.events["size_mw"].to_numpy(float),
+        "needed_gain_mw_per_hz": ev.dP / F,
+        "offered_gain_mw_per_hz": offered / F,
+        "needed_mw_at_limit": ev.dP,
+        "offered_mw_at_limit": offered,
+        "short_mw": np.maximum(ev.dP - offered, 0.0),
+    })

@@ -1,0 +1,111 @@
+"""Independent exact settled point: scalar power balance with dead bands and headroom
+saturation, then a DC load flow between areas.
+
+Deliberately shares no code with the optimisation model: it starts from the unit gains and
+headroom of an allocation and recomputes the physics, so that it can check the optimiser.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .case import Case
+
+
+def settle_deviation(dP: float, gain, deadband_hz, headroom, damping_mw_per_hz: float) -> float:
+    """Solve sum_i min(K_i (x - d_i)^+, r_i) + D x = dP for x >= 0 (dP >= 0, MW).
+
+    The left side is continuous, piecewise linear and non-decreasing in x, so the root is
+    found exactly by locating the segment between breakpoints. Returns inf when the
+    response saturates below dP (no settled point)."""
+    if dP <= 0:
+        return 0.0
+    K = np.asarray(gain, float)
+    d = np.asarray(deadband_hz, float)
+    r = np.asarray(headroom, float)
+    act = (K > 0) & (r > 0)
+    K, d, r = K[act], d[act], r[act]
+    D = float(damping_mw_per_hz)
+    sat = d + r / K  # deviation at which each unit reaches its headroom
+    pts = np.unique(np.r_[0.0, d, sat])
+
+    def total(x):
+        x = np.atleast_1d(x)[:, None]
+        return (np.minimum(K[None, :] * np.maximum(x - d[None, :], 0.0), r[None, :]).sum(1)
+                + D * x[:, 0])
+
+    vals = total(pts)
+    k = int(np.searchsorted(vals, dP, side="left"))
+    if k >= len(pts):
+        slope = D  # beyond the last breakpoint only load self-regulation grows
+        if slope <= 0:
+            return float("inf")
+        return float(pts[-1] + (dP - vals[-1]) / slope)
+    if k == 0:
+        return 0.0
+    x0, x1, v0, v1 = pts[k - 1], pts[k], vals[k - 1], vals[k]
+    return float(x0 + (dP - v0) * (x1 - x0) / (v1 - v0))
+
+
+def dc_flows(n_areas: int, from_idx, to_idx, reactance, injection) -> np.ndarray:
+    """DC load flow: B theta = P with theta_0 = 0; flow_l = (theta_f - theta_t) / x_l."""
+    f = np.asarray(from_idx, int)
+    t = np.asarray(to_idx, int)
+    b = 1.0 / np.asarray(reactance, float)
+    B = np.zeros((n_areas, n_areas))
+    np.add.at(B, (f, f), b)
+    np.add.at(B, (t, t), b)
+    np.add.at(B, (f, t), -b)
+    np.add.at(B, (t, f), -b)
+    theta = np.zeros(n_areas)
+    if n_areas > 1:
+        theta[1:] = np.linalg.solve(B[1:, 1:], np.asarray(injection, float)[1:])
+    return b * (theta[f] - theta[t])
+
+
+@dataclass(frozen=True)
+class SettledPoint:
+    event: str
+    deviation_hz: float  # signed: negative for under-frequency
+    response_mw: np.ndarray  # per unit, signed like the power it adds
+    injection_mw: np.ndarray  # per area change of net injection
+    flow_after_mw: np.ndarray  # per link
+
+
+def settle_case(case: Case, gain, headroom_up, headroom_down) -> list[SettledPoint]:
+    """Settled point of every event of the case for the given per-unit gains and headroom."""
+    K = np.asarray(gain, float)
+    d = case.units["deadband_mhz"].to_numpy(float) / 1000.0
+    unit_ids = list(case.units["unit"])
+    area_ids = list(case.areas["area"])
+    apos = {a: k for k, a in enumerate(area_ids)}
+    unit_area = np.array([apos[a] for a in case.units["area"]])
+    D_a = (case.areas["load_mw"].to_numpy(float)
+           * case.areas["load_damping_pct_per_hz"].to_numpy(float) / 100.0)
+    lk = case.links
+    f_idx = [apos[a] for a in lk["from_area"]]
+    t_idx = [apos[a] for a in lk["to_area"]]
+    F0 = lk["flow_mw"].to_numpy(float)
+    out = []
+    for _, e in case.events.iterrows():
+        size = float(e["size_mw"])
+        sign = 1.0 if size >= 0 else -1.0  # +1: deficit, frequency falls
+        r = np.asarray(headroom_up if sign > 0 else headroom_down, float).copy()
+        Ke = K.copy()
+        if e["kind"] == "unit_trip":
+            j = unit_ids.index(e["unit"])
+            Ke[j] = 0.0
+        x = settle_deviation(abs(size), Ke, d, r, D_a.sum())
+        if np.isfinite(x):
+            resp = np.minimum(Ke * np.maximum(x - d, 0.0), np.where(Ke > 0, r, 0.0))
+        else:
+            resp = np.where(Ke > 0, r, 0.0)
+        inj = np.bincount(unit_area, weights=resp, minlength=len(area_ids)) + D_a * (
+            x if np.isfinite(x) else 0.0)
+        inj[apos[e["area"]]] -= abs(size)
+        flows = F0 + (dc_flows(len(area_ids), f_idx, t_idx, lk["reactance_pu"], sign * inj)
+                      if len(lk) else np.zeros(0))
+        out.append(SettledPoint(str(e["event"]), -sign * x, sign * resp, sign * inj, flows))
+    return out
