@@ -214,6 +214,8 @@ def main(argv: list[str] | None = None) -> int:
     except OptreserveError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return exc.exit_code
+    except BrokenPipeError:  # output piped into head & co.
+        return EXIT_OK
     except KeyboardInterrupt:
         print("interrupted; no output written", file=sys.stderr)
         return 130

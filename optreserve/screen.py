@@ -22,7 +22,14 @@ def event_capability(case: Case) -> pd.DataFrame:
     ud = unit_data(case, need_up, need_dn)
     F = min(case.limits.max_settled_deviation_hz, case.limits.full_activation_deviation_hz)
     D = case.load_damping_mw_per_hz().sum()
-    resp = ud.K_hi * np.maximum(F - ud.d_hz, 0.0)  # MW each unit can give at the limit
+    K_max = ud.K_hi
+    if case.droop.steps_pct is not None:
+        # highest gain a governor step allows inside the band and the headroom
+        g = case.gain_from_droop(np.ones(len(case.units)))[:, None] / np.asarray(
+            case.droop.steps_pct)[None, :]
+        ok = (g >= ud.K_lo[:, None] * (1 - 1e-9)) & (g <= ud.K_hi[:, None] * (1 + 1e-9))
+        K_max = np.where(ok, g, 0.0).max(axis=1)
+    resp = K_max * np.maximum(F - ud.d_hz, 0.0)  # MW each unit can give at the limit
     total = resp.sum()
     offered = np.array([total - (resp[j] if j >= 0 else 0.0) for j in ev.trip]) + F * D
     return pd.DataFrame({

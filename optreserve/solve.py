@@ -71,9 +71,8 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     result = _make_result(case, lp, info, out, relax)
     result.iterations = iterations
     _attach_prices(result, lp, info, out)
-    result.timings_s.update(
-        read=case_read_time(case), build=t_build, solve=t_solve,
-        total=time.perf_counter() - t_start + case_read_time(case))
+    result.timings_s.update(read=case_read_time(case), build=t_build, solve=t_solve, write=0.0,
+                            total=time.perf_counter() - t_start + case_read_time(case))
     return result
 
 
