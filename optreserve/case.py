@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -40,7 +40,12 @@ class Case:
               price_down_per_mw_h, provides, inertia_s, activation_time_s (NaN = not given)
       areas:  area, load_mw, load_damping_pct_per_hz, min_own_reserve_mw
       links:  link, from_area, to_area, reactance_pu, limit_mw, flow_mw
-      events: event, kind, unit ("" for load steps), area, size_mw (signed: > 0 deficit)
+        events: event, kind, unit ("" for load steps), area, size_mw (signed: > 0 deficit),
+              period (label or None = every period), size_from_output (size_mw defaulted to
+              the unit's output, so it follows output_mw per period)
+
+    A horizon (day-ahead) case has `periods` (labels in order), `period_hours` and long
+    override tables in `series` ("units", "areas", "links": period, id, overridden columns).
     """
 
     name: str
@@ -55,6 +60,72 @@ class Case:
     path: Path | None = None
     warnings: tuple[str, ...] = field(default_factory=tuple)
     read_time_s: float = 0.0
+    periods: tuple = ()
+    period_hours: tuple[float, ...] = ()
+    series: dict = field(default_factory=dict)
+    hold_periods: int | None = None  # droop fixed per block of N periods; None = whole horizon
+
+    # --- horizon ---
+    @property
+    def is_horizon(self) -> bool:
+        return len(self.periods) > 0
+
+    @property
+    def n_periods(self) -> int:
+        return max(1, len(self.periods))
+
+    def hours(self) -> np.ndarray:
+        return np.asarray(self.period_hours, float) if self.is_horizon else np.ones(1)
+
+    def blocks(self) -> np.ndarray:
+        """Droop block of every period: gains are shared inside a block."""
+        T = self.n_periods
+        if not self.is_horizon or self.hold_periods is None:
+            return np.zeros(T, dtype=np.int64)
+        return np.arange(T, dtype=np.int64) // int(self.hold_periods)
+
+    def snapshots(self) -> list["Case"]:
+        """One static case per period (overrides applied, events of that period only)."""
+        if not self.is_horizon:
+            return [self]
+        tables = {"units": ("unit", self.units), "areas": ("area", self.areas),
+                  "links": ("link", self.links)}
+        per = {}
+        for key, (idc, base) in tables.items():
+            ser = self.series.get(key)
+            per[key] = {}
+            if ser is None or len(ser) == 0:
+                continue
+            pos = {v: k for k, v in enumerate(base[idc])}
+            cols = [c for c in ser.columns if c not in ("period", idc)]
+            for t, grp in ser.groupby("period", sort=False):
+                per[key][t] = (grp[idc].map(pos).to_numpy(), grp[cols])
+        out = []
+        ev = self.events
+        for t in self.periods:
+            frames = {}
+            for key, (idc, base) in tables.items():
+                df = base
+                if t in per[key]:
+                    rows, vals = per[key][t]
+                    df = base.copy()
+                    for c in vals.columns:
+                        col = vals[c].to_numpy()
+                        keep = ~pd.isna(col)
+                        if keep.any():
+                            arr = df[c].to_numpy().copy()
+                            arr[rows[keep]] = col[keep].astype(arr.dtype)
+                            df[c] = arr
+                frames[key] = df
+            e = ev[(ev["period"].isna()) | (ev["period"] == t)].copy()
+            if len(e) and e["size_from_output"].any():
+                out_now = dict(zip(frames["units"]["unit"], frames["units"]["output_mw"]))
+                m = e["size_from_output"].to_numpy(bool)
+                e.loc[m, "size_mw"] = [out_now[u] for u in e.loc[m, "unit"]]
+            out.append(replace(self, units=frames["units"], areas=frames["areas"],
+                               links=frames["links"], events=e.reset_index(drop=True),
+                               periods=(), period_hours=(), series={}))
+        return out
 
     # --- derived views used throughout (numpy inside, pandas at the edges) ---
     @property
@@ -91,6 +162,4 @@ class Case:
         return bool((self.events["size_mw"] < 0).any())
 
     def replace(self, **changes) -> "Case":
-        from dataclasses import replace
-
         return replace(self, **changes)

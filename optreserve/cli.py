@@ -122,24 +122,38 @@ def _write_diagnosis(exc: InfeasibleError, out_dir: Path, force: bool) -> None:
 def _print_result(result: Result, out_dir: Path | None) -> None:
     s = result.summary
     gap = f", gap {s['mip_gap'] * 100:.3f} %" if s["mip_gap"] is not None else ""
-    print(f"case {s['case']!r}: {s['status']}, cost {s['objective_per_h']:.2f} per hour{gap}")
+    if s["objective_total"] is not None:
+        cost = (f"cost {s['objective_total']:.2f} over {s['periods']} periods "
+                f"({s['horizon_hours']:g} h)")
+    else:
+        cost = f"cost {s['objective_per_h']:.2f} per hour"
+    print(f"case {s['case']!r}: {s['status']}, {cost}{gap}")
     print(f"{s['units_providing']} of {len(result.allocation)} units provide; headroom "
           f"{s['headroom_up_mw']:.1f} MW up, {s['headroom_down_mw']:.1f} MW down")
+    ev = result.events.assign(
+        margin_hz=result.events["limit_hz"] - result.events["settled_deviation_hz"].abs())
+    horizon = "period" in ev.columns
+    if horizon:  # one line per event: its tightest period
+        ev = ev.loc[ev.groupby("event", sort=False)["margin_hz"].idxmin()]
+        print("per event, the period with the least margin:")
     rows = []
-    for r in result.events.itertuples():
-        margin = (r.limit_hz - abs(r.settled_deviation_hz)) * 1000
+    for r in ev.itertuples():
         price = r.marginal_cost_per_mw_h
-        rows.append([str(r.event), str(r.kind), f"{r.size_mw:.1f}",
-                     f"{r.settled_frequency_hz:.4f}", f"{r.settled_deviation_hz * 1000:+.1f}",
-                     f"{margin:.1f}", "yes" if r.binding else "",
-                     "" if price != price else f"{price:.3f}"])
-    print(_table(["event", "kind", "size MW", "settles Hz", "dev mHz", "margin mHz", "binding",
-                  "price /MW/h"], rows, {2, 3, 4, 5, 7}))
+        rows.append([str(r.event)] + ([str(r.period)] if horizon else []) + [
+            str(r.kind), f"{r.size_mw:.1f}", f"{r.settled_frequency_hz:.4f}",
+            f"{r.settled_deviation_hz * 1000:+.1f}", f"{r.margin_hz * 1000:.1f}",
+            "yes" if r.binding else "", "" if price != price else f"{price:.3f}"])
+    head = ["event"] + (["period"] if horizon else []) + [
+        "kind", "size MW", "settles Hz", "dev mHz", "margin mHz", "binding", "price /MW/h"]
+    off = 1 if horizon else 0
+    print(_table(head, rows, {k + off for k in (2, 3, 4, 5, 7)}))
     bl = result.binding_links
     if len(bl):
-        print("binding links: " + "; ".join(
-            f"{r.link} after {r.event} ({r.flow_after_mw:+.1f} of {r.limit_mw:.0f} MW)"
-            for r in bl.itertuples()))
+        shown = [f"{r.link} after {r.event}" + (f" in {r.period}" if horizon else "")
+                 + f" ({r.flow_after_mw:+.1f} of {r.limit_mw:.0f} MW)"
+                 for r in bl.head(8).itertuples()]
+        more = f"; and {len(bl) - 8} more" if len(bl) > 8 else ""
+        print("binding links: " + "; ".join(shown) + more)
     else:
         lk = result.links
         if len(lk):
@@ -149,7 +163,8 @@ def _print_result(result: Result, out_dir: Path | None) -> None:
     t = s["timings_s"]
     print("time: " + ", ".join(f"{k} {v:.2f} s" for k, v in t.items()))
     if out_dir is not None:
-        print(f"wrote {out_dir}: allocation.csv events.csv links.csv summary.json")
+        extra = " schedule_wide.csv" if result.case.is_horizon else ""
+        print(f"wrote {out_dir}: allocation.csv events.csv links.csv{extra} summary.json")
     print(CAUTION)
 
 

@@ -1,8 +1,10 @@
 """The optimisation model in gain space, one small function per constraint family.
 
-Symbols follow docs/formulation.md: K unit gain [MW/Hz], u participation, z droop-step choice,
-r_up/r_dn headroom [MW], G per-area per-dead-band-class gain aggregate [MW/Hz], F settled
-limit, F_act full-activation deviation, D_a load self-regulation [MW/Hz], Phi the PTDF.
+Symbols follow docs/formulation.md: K unit gain [MW/Hz] (one per droop block b), u
+participation, z droop-step choice, r_up/r_dn headroom [MW] (per period t), G per-area
+per-dead-band-class gain aggregate [MW/Hz], F settled limit, F_act full-activation deviation,
+D_a load self-regulation [MW/Hz], Phi the PTDF. A single snapshot is a horizon of one period.
+Every family is added as whole arrays; no Python loop runs over units or periods.
 """
 
 from __future__ import annotations
@@ -15,15 +17,15 @@ from .case import Case
 from .network import ptdf
 from .program import LinearProgram
 
-# Penalties of the elastic (diagnosis) variant: large against any headroom price so that a
+# Penalty of the elastic (diagnosis) slacks: large against any headroom price so that a
 # relaxation is used only when nothing else can meet the limits.
 ELASTIC_PENALTY = 1.0e6
 
 
 @dataclass(frozen=True)
 class Events:
-    """Per event: magnitude dP [MW] > 0 or 0, direction sigma (+1 deficit / under-frequency,
-    -1 surplus / over-frequency), area index and tripped unit index (-1 for a load step)."""
+    """Events of one snapshot: magnitude dP [MW] >= 0, direction sigma (+1 deficit /
+    under-frequency, -1 surplus / over-frequency), area index, tripped unit (-1: load step)."""
 
     names: list[str]
     dP: np.ndarray
@@ -38,7 +40,7 @@ class Events:
         upos = {u: k for k, u in enumerate(case.units["unit"])}
         size = ev["size_mw"].to_numpy(float)
         return cls(
-            names=list(ev["event"]),
+            names=[str(e) for e in ev["event"]],
             dP=np.abs(size),
             sigma=np.where(size < 0, -1.0, 1.0),
             area=np.array([apos[a] for a in ev["area"]], dtype=np.int64),
@@ -49,7 +51,7 @@ class Events:
 
 @dataclass(frozen=True)
 class UnitData:
-    """Per-unit numbers the model needs, after the presolve of what each unit can give."""
+    """What one snapshot's units can give (static settings and that period's headroom)."""
 
     K_lo: np.ndarray
     K_hi: np.ndarray  # highest gain inside band and headroom (0 if it cannot provide)
@@ -77,19 +79,120 @@ def unit_data(case: Case, need_up: bool, need_dn: bool) -> UnitData:
     R_dn = np.maximum(0.0, np.fmin(out - mn, np.where(np.isnan(dn_cap), np.inf, dn_cap)))
     provides = u["provides"].to_numpy(bool)
     a_act = np.maximum(case.limits.full_activation_deviation_hz - d, 0.0)
+    inf = np.full_like(cap, np.inf)
     with np.errstate(divide="ignore", invalid="ignore"):
-        lim_up = np.where(a_act > 0, R_up / a_act, np.inf) if need_up else np.full_like(cap, np.inf)
-        lim_dn = np.where(a_act > 0, R_dn / a_act, np.inf) if need_dn else np.full_like(cap, np.inf)
+        lim_up = np.where(a_act > 0, R_up / a_act, np.inf) if need_up else inf
+        lim_dn = np.where(a_act > 0, R_dn / a_act, np.inf) if need_dn else inf
     K_hi = np.minimum(K_band, np.minimum(lim_up, lim_dn))
     capable = provides & (K_hi >= K_lo * (1 - 1e-12))
     K_hi = np.where(capable, K_hi, 0.0)
     now = u["droop_now_pct"].to_numpy(float)
     with np.errstate(divide="ignore", invalid="ignore"):
         K_now = cap / (now / 100.0 * f_n)
-    area = case.unit_area_index()
     R_up = np.where(provides, R_up, 0.0)
     R_dn = np.where(provides, R_dn, 0.0)
-    return UnitData(K_lo, K_hi, capable, d, R_up, R_dn, a_act, area, K_now)
+    return UnitData(K_lo, K_hi, capable, d, R_up, R_dn, a_act, case.unit_area_index(), K_now)
+
+
+@dataclass
+class Horizon:
+    """Everything the model needs, stacked over periods (T) and event instances (M).
+
+    Arrays shaped (T, N) are per period and unit; instances are the events of every period.
+    Built once per solve and reused by every dead-band iteration."""
+
+    case: Case
+    snaps: list[Case]
+    T: int
+    hours: np.ndarray  # (T,)
+    block: np.ndarray  # (T,) droop block of each period
+    n_blocks: int
+    # units, static
+    K_lo: np.ndarray
+    K_band: np.ndarray
+    d_hz: np.ndarray
+    a_act: np.ndarray
+    area: np.ndarray
+    K_now: np.ndarray
+    # units, per period
+    K_hi_t: np.ndarray
+    avail: np.ndarray  # bool: can respond in that period
+    R_up: np.ndarray
+    R_dn: np.ndarray
+    price_up: np.ndarray
+    price_dn: np.ndarray
+    need_up: np.ndarray  # (T,) under-frequency events in that period
+    need_dn: np.ndarray
+    # areas / links per period
+    D_a: np.ndarray  # (T, A)
+    own: np.ndarray  # (T, A)
+    F0: np.ndarray  # (T, L)
+    Fmax: np.ndarray  # (T, L)
+    Phi: np.ndarray  # (T, L, A)
+    # event instances
+    inst_name: list[str]
+    inst_t: np.ndarray
+    dP: np.ndarray
+    sigma: np.ndarray
+    inst_area: np.ndarray
+    trip: np.ndarray
+    # droop blocks
+    K_hi_b: np.ndarray  # (B, N)
+    capable_b: np.ndarray  # (B, N)
+
+    @property
+    def N(self) -> int:
+        return len(self.K_lo)
+
+
+def prepare(case: Case) -> Horizon:
+    snaps = case.snapshots()
+    T = len(snaps)
+    evs = [Events.of(s) for s in snaps]
+    need_up = np.array([bool((e.dP[e.sigma > 0] > 0).any()) for e in evs])
+    need_dn = np.array([bool((e.dP[e.sigma < 0] > 0).any()) for e in evs])
+    uds = [unit_data(s, bool(nu), bool(nd)) for s, nu, nd in zip(snaps, need_up, need_dn)]
+    u0 = uds[0]
+    K_hi_t = np.array([x.K_hi for x in uds])
+    avail = np.array([x.capable for x in uds])
+    block = case.blocks()
+    B = int(block.max()) + 1
+    big = np.where(avail, K_hi_t, np.inf)
+    K_hi_b = np.full((B, len(u0.K_lo)), np.inf)
+    np.minimum.at(K_hi_b, block, big)
+    capable_b = np.isfinite(K_hi_b)
+    K_hi_b = np.where(capable_b, K_hi_b, 0.0)
+    # Phi once per distinct set of reactances
+    Phis, cache = [], {}
+    for s in snaps:
+        key = tuple(s.links["reactance_pu"].to_numpy(float))
+        if key not in cache:
+            cache[key] = ptdf(s)
+        Phis.append(cache[key])
+    n_l, n_a = len(case.links), len(case.areas)
+    return Horizon(
+        case=case, snaps=snaps, T=T, hours=case.hours(), block=block, n_blocks=B,
+        K_lo=u0.K_lo, K_band=case.gain_from_droop(case.units["droop_min_pct"]),
+        d_hz=u0.d_hz, a_act=u0.a_act, area=u0.area, K_now=u0.K_now,
+        K_hi_t=K_hi_t, avail=avail,
+        R_up=np.array([x.R_up for x in uds]), R_dn=np.array([x.R_dn for x in uds]),
+        price_up=np.array([s.units["price_up_per_mw_h"].to_numpy(float) for s in snaps]),
+        price_dn=np.array([s.units["price_down_per_mw_h"].to_numpy(float) for s in snaps]),
+        need_up=need_up, need_dn=need_dn,
+        D_a=np.array([s.load_damping_mw_per_hz() for s in snaps]),
+        own=np.array([s.areas["min_own_reserve_mw"].to_numpy(float) for s in snaps]),
+        F0=np.array([s.links["flow_mw"].to_numpy(float) for s in snaps]).reshape(T, n_l),
+        Fmax=np.array([s.links["limit_mw"].to_numpy(float) for s in snaps]).reshape(T, n_l),
+        Phi=np.array(Phis).reshape(T, n_l, n_a),
+        inst_name=[n for e in evs for n in e.names],
+        inst_t=np.concatenate([np.full(len(e.names), t) for t, e in enumerate(evs)]).astype(
+            np.int64),
+        dP=np.concatenate([e.dP for e in evs]),
+        sigma=np.concatenate([e.sigma for e in evs]),
+        inst_area=np.concatenate([e.area for e in evs]).astype(np.int64),
+        trip=np.concatenate([e.trip for e in evs]).astype(np.int64),
+        K_hi_b=K_hi_b, capable_b=capable_b,
+    )
 
 
 @dataclass
@@ -97,24 +200,27 @@ class ModelInfo:
     """What it takes to read a solution of the program back in engineering terms."""
 
     case: Case
-    ev: Events
-    ud: UnitData
+    hz: Horizon
     F_model: float  # settled-deviation bound the rows enforce
-    x_hat: np.ndarray  # per event: settled |df| guess used for dead-band-reduced gains
+    x_hat: np.ndarray  # per instance: settled |df| guess used for dead-band-reduced gains
     classes: np.ndarray  # dead-band values [Hz] of the aggregate classes
     unit_class: np.ndarray
+    group_of_t: np.ndarray  # (T,) aggregate group of each period
     steps_gain: np.ndarray | None  # per step-choice column: gain [MW/Hz]
     steps_unit: np.ndarray | None  # per step-choice column: unit index
+    steps_block: np.ndarray | None
     steps_pct: np.ndarray | None
-    change_units: np.ndarray  # unit indices that carry a change indicator
-    Phi: np.ndarray
-    need_up: bool
-    need_dn: bool
+    change_cols: np.ndarray  # (block, unit) flat indices that carry a change indicator
     elastic: bool
 
+    @property
+    def ev(self) -> Events:  # instances in the Events shape
+        hz = self.hz
+        return Events(hz.inst_name, hz.dP, hz.sigma, hz.inst_area, hz.trip)
 
-def effective_factor(d_hz: np.ndarray, x_hat: np.ndarray) -> np.ndarray:
-    """(1 - d / x)^+ for every (event, d): unit response K (x - d)^+ = K x (1 - d/x)^+."""
+
+def effective_factor(d_hz, x_hat) -> np.ndarray:
+    """(1 - d / x)^+ for every (x, d) pair: unit response K (x - d)^+ = K x (1 - d/x)^+."""
     x = np.asarray(x_hat, float)[:, None]
     with np.errstate(divide="ignore", invalid="ignore"):
         c = np.where(x > 0, 1.0 - np.asarray(d_hz, float)[None, :] / x, 0.0)
@@ -122,186 +228,211 @@ def effective_factor(d_hz: np.ndarray, x_hat: np.ndarray) -> np.ndarray:
 
 
 def build_model(case: Case, x_hat: np.ndarray | None = None, elastic: bool = False,
-                relax: bool = False) -> tuple[LinearProgram, ModelInfo]:
+                relax: bool = False, hz: Horizon | None = None
+                ) -> tuple[LinearProgram, ModelInfo]:
     """Describe the whole allocation problem as sparse blocks."""
-    ev = Events.of(case)
-    need_up = bool((ev.dP[ev.sigma > 0] > 0).any())
-    need_dn = bool((ev.dP[ev.sigma < 0] > 0).any())
-    ud = unit_data(case, need_up, need_dn)
+    hz = hz if hz is not None else prepare(case)
+    N, T, B = hz.N, hz.T, hz.n_blocks
+    n_a = len(case.areas)
+    M = len(hz.dP)
     F = case.limits.max_settled_deviation_hz
     F_model = min(F, case.limits.full_activation_deviation_hz)
-    if x_hat is None:
-        x_hat = np.full(len(ev.names), F_model)
-    n = len(case.units)
-    n_a = len(case.areas)
+    x_hat = np.full(M, F_model) if x_hat is None else np.asarray(x_hat, float)
     lp = LinearProgram()
 
     # dead-band classes: units sharing a dead band share an aggregate per area
-    classes, unit_class = np.unique(np.round(ud.d_hz, 12), return_inverse=True)
+    classes, unit_class = np.unique(np.round(hz.d_hz, 12), return_inverse=True)
     n_k = len(classes)
+    # aggregate groups: periods with the same droop block and the same available units
+    sig = np.concatenate([hz.block[:, None], hz.avail.astype(np.int64)], axis=1)
+    _, first, group_of_t = np.unique(sig, axis=0, return_index=True, return_inverse=True)
+    group_of_t = group_of_t.reshape(-1)
 
-    K = lp.add_vars("K", n, 0.0, ud.K_hi)
+    K = lp.add_vars("K", B * N, 0.0, hz.K_hi_b.reshape(-1))
     steps = case.droop.steps_pct
-    info_steps = (None, None, None)
+    st = (None, None, None, None)
     if steps is not None:
         s = np.asarray(steps, float)
-        g = case.gain_from_droop(np.ones(n))[:, None] / s[None, :]  # K for each (unit, step)
-        ok = ud.capable[:, None] & (g >= ud.K_lo[:, None] * (1 - 1e-9)) & (
-            g <= ud.K_hi[:, None] * (1 + 1e-9)) & (
-            s[None, :] >= case.units["droop_min_pct"].to_numpy(float)[:, None] - 1e-9) & (
+        g = case.gain_from_droop(np.ones(N))[:, None] / s[None, :]  # (N, S)
+        band = (s[None, :] >= case.units["droop_min_pct"].to_numpy(float)[:, None] - 1e-9) & (
             s[None, :] <= case.units["droop_max_pct"].to_numpy(float)[:, None] + 1e-9)
-        zu, zk = np.nonzero(ok)
-        zg = g[zu, zk]
+        ok = (hz.capable_b[:, :, None] & band[None] & (g[None] <= hz.K_hi_b[:, :, None] *
+                                                        (1 + 1e-9)))
+        zb, zu, zk = np.nonzero(ok)
         Z = lp.add_vars("z", len(zu), 0.0, 1.0, integer=not relax)
-        info_steps = (zg, zu, s[zk])
-        _rows_steps(lp, K, Z, zu, zg, n)
-        part_cols, part_unit, part_coef = Z.idx(), zu, np.ones(len(zu))
+        st = (g[zu, zk], zu, zb, s[zk])
+        _rows_steps(lp, K, Z, zb * N + zu, g[zu, zk], B * N)
+        part_cols, part_of = Z.idx(), zb * N + zu
     else:
-        U = lp.add_vars("u", n, 0.0, ud.capable.astype(float), integer=not relax)
-        _rows_band(lp, K, U, ud)
-        part_cols, part_unit, part_coef = U.idx(), np.arange(n), np.ones(n)
+        U = lp.add_vars("u", B * N, 0.0, hz.capable_b.reshape(-1).astype(float),
+                        integer=not relax)
+        _rows_band(lp, K, U, np.tile(hz.K_lo, B), hz.K_hi_b.reshape(-1))
+        part_cols, part_of = U.idx(), np.arange(B * N)
 
-    own = case.areas["min_own_reserve_mw"].to_numpy(float)
-    hold_up = need_up | (own[ud.area] > 0)
-    r_up = lp.add_vars("r_up", n, 0.0, np.where(hold_up, ud.R_up, 0.0),
-                       cost=case.units["price_up_per_mw_h"].to_numpy(float))
-    r_dn = lp.add_vars("r_dn", n, 0.0, np.where(need_dn, ud.R_dn, 0.0),
-                       cost=case.units["price_down_per_mw_h"].to_numpy(float))
-    G = lp.add_vars("G", n_a * n_k, 0.0, np.inf)
+    hold_up = hz.avail & (hz.need_up[:, None] | (hz.own[:, hz.area] > 0))
+    hold_dn = hz.avail & hz.need_dn[:, None]
+    r_up = lp.add_vars("r_up", T * N, 0.0, np.where(hold_up, hz.R_up, 0.0).reshape(-1),
+                       cost=(hz.price_up * hz.hours[:, None]).reshape(-1))
+    r_dn = lp.add_vars("r_dn", T * N, 0.0, np.where(hold_dn, hz.R_dn, 0.0).reshape(-1),
+                       cost=(hz.price_dn * hz.hours[:, None]).reshape(-1))
+    n_g = len(first)
+    G = lp.add_vars("G", n_g * n_a * n_k, 0.0, np.inf)
 
-    _rows_aggregate(lp, K, G, ud.area * n_k + unit_class, n_a * n_k)
-    if need_up:
-        _rows_headroom(lp, "headroom_up", K, r_up, ud)
-    if need_dn:
-        _rows_headroom(lp, "headroom_dn", K, r_dn, ud)
-    if (own > 0).any():
-        _rows_own_reserve(lp, r_up, ud, own, part_cols, part_unit, part_coef, elastic)
-    _rows_settled(lp, case, ev, K, G, ud, classes, n_k, F_model, elastic)
-    Phi = ptdf(case)
+    _rows_aggregate(lp, hz, K, G, first, unit_class, n_a, n_k)
+    tt, ii = np.nonzero(hz.avail & hz.need_up[:, None])
+    _rows_headroom(lp, "headroom_up", hz, K, r_up, tt, ii)
+    tt, ii = np.nonzero(hz.avail & hz.need_dn[:, None])
+    _rows_headroom(lp, "headroom_dn", hz, K, r_dn, tt, ii)
+    if (hz.own > 0).any():
+        _rows_own_reserve(lp, hz, r_up, part_cols, part_of, elastic)
+    ginfo = (group_of_t, n_a, n_k, classes)
+    _rows_settled(lp, hz, K, G, ginfo, F_model, elastic)
     if len(case.links):
-        _rows_flows(lp, case, ev, K, G, ud, classes, unit_class, n_k, Phi, x_hat, elastic)
-    change_units = _rows_change(lp, case, K, ud, info_steps, part_cols, part_unit, relax)
+        _rows_flows(lp, hz, K, G, ginfo, x_hat, elastic)
+    change_cols = _rows_change(lp, case, hz, K, st, relax)
 
-    info = ModelInfo(case, ev, ud, F_model, np.asarray(x_hat, float), classes, unit_class,
-                     info_steps[0], info_steps[1], info_steps[2], change_units, Phi,
-                     need_up, need_dn, elastic)
+    info = ModelInfo(case, hz, F_model, x_hat, classes, unit_class, group_of_t,
+                     st[0], st[1], st[2], st[3], change_cols, elastic)
     return lp, info
 
 
 # ------------------------------------------------------------------ constraint families
-def _rows_band(lp, K, U, ud: UnitData):
+def _rows_band(lp, K, U, K_lo, K_hi):
     """u K_lo <= K <= u K_hi (semi-continuous gain: off, or inside the band)."""
     n = K.size
     i = np.arange(n)
-    lp.add_rows("band_hi", n, np.r_[i, i], np.r_[K.idx(), U.idx()], np.r_[np.ones(n), -ud.K_hi],
+    lp.add_rows("band_hi", n, np.r_[i, i], np.r_[K.idx(), U.idx()], np.r_[np.ones(n), -K_hi],
                 hi=0.0)
-    lp.add_rows("band_lo", n, np.r_[i, i], np.r_[K.idx(), U.idx()], np.r_[np.ones(n), -ud.K_lo],
+    lp.add_rows("band_lo", n, np.r_[i, i], np.r_[K.idx(), U.idx()], np.r_[np.ones(n), -K_lo],
                 lo=0.0)
 
 
-def _rows_steps(lp, K, Z, zu, zg, n):
-    """K_i = sum_k g_ik z_ik and sum_k z_ik <= 1 (one setting, or off)."""
-    lp.add_rows("step_gain", n, np.r_[np.arange(n), zu], np.r_[K.idx(), Z.idx()],
+def _rows_steps(lp, K, Z, z_of, zg, n):
+    """K = sum_k g_k z_k and sum_k z_k <= 1 per (block, unit): one setting, or off."""
+    lp.add_rows("step_gain", n, np.r_[np.arange(n), z_of], np.r_[K.idx(), Z.idx()],
                 np.r_[np.ones(n), -zg], lo=0.0, hi=0.0)
-    lp.add_rows("step_one", n, zu, Z.idx(), np.ones(len(zu)), hi=1.0)
+    lp.add_rows("step_one", n, z_of, Z.idx(), np.ones(len(z_of)), hi=1.0)
 
 
-def _rows_aggregate(lp, K, G, group, n_groups):
-    """G_ak - sum_{i in a, class k} K_i = 0: flow and settled rows see a few aggregates."""
-    n = K.size
-    lp.add_rows("aggregate", n_groups, np.r_[np.arange(n_groups), group],
-                np.r_[G.idx(), K.idx()], np.r_[np.ones(n_groups), -np.ones(n)], lo=0.0, hi=0.0)
+def _rows_aggregate(lp, hz: Horizon, K, G, first, unit_class, n_a, n_k):
+    """G_gak - sum K_bi over units i available in group g, in area a, dead-band class k = 0:
+    settled and flow rows then see a few aggregates instead of every unit."""
+    N = hz.N
+    n_g = len(first)
+    gg, ii = np.nonzero(hz.avail[first])  # members of each group
+    b = hz.block[first][gg]
+    n_rows = n_g * n_a * n_k
+    row_of = gg * n_a * n_k + hz.area[ii] * n_k + unit_class[ii]
+    lp.add_rows("aggregate", n_rows, np.r_[np.arange(n_rows), row_of],
+                np.r_[G.idx(), K.idx(b * N + ii)], np.r_[np.ones(n_rows), -np.ones(len(ii))],
+                lo=0.0, hi=0.0)
 
 
-def _rows_headroom(lp, name, K, r, ud: UnitData):
-    """r_i >= K_i (F_act - d_i)^+: full droop response at F_act fits in the headroom."""
-    n = K.size
-    i = np.arange(n)
-    lp.add_rows(name, n, np.r_[i, i], np.r_[r.idx(), K.idx()], np.r_[np.ones(n), -ud.a_act],
-                lo=0.0)
+def _rows_headroom(lp, name, hz: Horizon, K, r, tt, ii):
+    """r_ti >= K_bi (F_act - d_i)^+: the full droop response at F_act fits in the headroom."""
+    m = len(tt)
+    if m == 0:
+        return
+    N = hz.N
+    rows = np.arange(m)
+    lp.add_rows(name, m, np.r_[rows, rows], np.r_[r.idx(tt * N + ii), K.idx(hz.block[tt] * N + ii)],
+                np.r_[np.ones(m), -hz.a_act[ii]], lo=0.0)
 
 
-def _rows_own_reserve(lp, r_up, ud, own, part_cols, part_unit, part_coef, elastic):
-    """sum_{i in a} r_up_i >= min_own_a, and only participating providers hold headroom."""
-    n = r_up.size
-    lp.add_rows("hold_if_part", n, np.r_[np.arange(n), part_unit],
-                np.r_[r_up.idx(), part_cols], np.r_[np.ones(n), -ud.R_up[part_unit] * part_coef],
-                hi=0.0)
-    areas = np.nonzero(own > 0)[0]
-    local = {a: k for k, a in enumerate(areas)}
-    sel = np.isin(ud.area, areas)
-    rows = np.array([local[a] for a in ud.area[sel]], dtype=np.int64)
-    cols, vals = r_up.idx()[sel], np.ones(int(sel.sum()))
+def _rows_own_reserve(lp, hz: Horizon, r_up, part_cols, part_of, elastic):
+    """sum_{i in a} r_up_ti >= min_own_ta; only participating providers hold headroom."""
+    N, T = hz.N, hz.T
+    # r_up_ti - R_up_ti * (participation of unit i in block b(t)) <= 0
+    n_part = len(part_of)
+    tt = np.repeat(np.arange(T), n_part)
+    pb, pu = np.divmod(np.tile(part_of, T), N)
+    sel = pb == hz.block[tt]
+    tt, pu, pc = tt[sel], pu[sel], np.tile(part_cols, T)[sel]
+    lp.add_rows("hold_if_part", T * N, np.r_[np.arange(T * N), tt * N + pu],
+                np.r_[r_up.idx(), pc], np.r_[np.ones(T * N), -hz.R_up[tt, pu]], hi=0.0)
+    ta, aa = np.nonzero(hz.own > 0)
+    n_rows = len(ta)
+    local = np.full(hz.own.shape, -1)
+    local[ta, aa] = np.arange(n_rows)
+    t2, i2 = np.nonzero(local[:, hz.area] >= 0)
+    rows, cols, vals = local[t2, hz.area[i2]], r_up.idx(t2 * N + i2), np.ones(len(t2))
     if elastic:
-        S = lp.add_vars("slack_own", len(areas), 0.0, np.inf, cost=ELASTIC_PENALTY)
-        rows, cols, vals = np.r_[rows, np.arange(len(areas))], np.r_[cols, S.idx()], np.r_[
-            vals, np.ones(len(areas))]
-    lp.add_rows("own_reserve", len(areas), rows, cols, vals, lo=own[areas])
+        S = lp.add_vars("slack_own", n_rows, 0.0, np.inf, cost=ELASTIC_PENALTY)
+        rows, cols, vals = np.r_[rows, np.arange(n_rows)], np.r_[cols, S.idx()], np.r_[
+            vals, np.ones(n_rows)]
+    lp.add_rows("own_reserve", n_rows, rows, cols, vals, lo=hz.own[ta, aa])
 
 
-def _trip_terms(ev: Events, ud: UnitData, coef_of_event):
-    """Entries removing each tripped provider's own gain from its event's rows."""
-    e = np.nonzero((ev.trip >= 0))[0]
-    e = e[ud.capable[ev.trip[e]]]
-    return e, ev.trip[e], coef_of_event(e, ev.trip[e])
+def _trip_live(hz: Horizon, inst):
+    """Instances (of those given) whose tripped unit responds in its period, and that unit."""
+    j = hz.trip[inst]
+    ok = j >= 0
+    ok[ok] = hz.avail[hz.inst_t[inst][ok], j[ok]]
+    return inst[ok], j[ok]
 
 
-def _rows_settled(lp, case, ev: Events, K, G, ud, classes, n_k, F_m, elastic):
-    """sum_i K_i (F - d_i)^+ + F sum_a D_a >= |dP| for every event (tripped unit excluded)."""
-    n_e, n_a = len(ev.names), len(case.areas)
-    D = case.load_damping_mw_per_hz().sum()
-    w = np.maximum(F_m - classes, 0.0)  # per class
-    rows = np.repeat(np.arange(n_e), n_a * n_k)
-    cols = np.tile(G.idx(), n_e)
-    vals = np.tile(np.tile(w, n_a), n_e)
-    te, tu, tv = _trip_terms(ev, ud, lambda e, j: -np.maximum(F_m - ud.d_hz[j], 0.0))
-    rows, cols, vals = np.r_[rows, te], np.r_[cols, K.idx(tu)], np.r_[vals, tv]
+def _rows_settled(lp, hz: Horizon, K, G, ginfo, F_m, elastic):
+    """sum_i K_i (F - d_i)^+ + F sum_a D_a >= |dP| per event instance (tripped unit out)."""
+    group_of_t, n_a, n_k, classes = ginfo
+    M, N = len(hz.dP), hz.N
+    w = np.tile(np.maximum(F_m - classes, 0.0), n_a)  # per (a, k)
+    g = group_of_t[hz.inst_t]
+    rows = np.repeat(np.arange(M), n_a * n_k)
+    cols = G.idx((g[:, None] * n_a * n_k + np.arange(n_a * n_k)[None, :]).reshape(-1))
+    vals = np.tile(w, M)
+    te, j = _trip_live(hz, np.arange(M))
+    rows = np.r_[rows, te]
+    cols = np.r_[cols, K.idx(hz.block[hz.inst_t[te]] * N + j)]
+    vals = np.r_[vals, -np.maximum(F_m - hz.d_hz[j], 0.0)]
     if elastic:
-        S = lp.add_vars("slack_settled", n_e, 0.0, np.inf, cost=ELASTIC_PENALTY)
-        rows, cols, vals = np.r_[rows, np.arange(n_e)], np.r_[cols, S.idx()], np.r_[
-            vals, np.ones(n_e)]
-    lp.add_rows("settled", n_e, rows, cols, vals, lo=ev.dP - F_m * D)
+        S = lp.add_vars("slack_settled", M, 0.0, np.inf, cost=ELASTIC_PENALTY)
+        rows, cols, vals = np.r_[rows, np.arange(M)], np.r_[cols, S.idx()], np.r_[
+            vals, np.ones(M)]
+    lp.add_rows("settled", M, rows, cols, vals, lo=hz.dP - F_m * hz.D_a[hz.inst_t].sum(axis=1))
 
 
-def flow_weights(case: Case, ev: Events, Phi: np.ndarray):
-    """Per (event, link, area) the weights of beta'_a in the flow rows multiplied by beta'
-    (then divided by the link limit to keep coefficients near one):
+def flow_weights(hz: Horizon, inst=None):
+    """Per (instance, link, area) the weights of beta'_a in the flow rows multiplied by
+    beta' (then divided by the link limit, which keeps coefficients near one):
       upper: sum_a [F0 - Fmax + s dP (Phi_la - Phi_l,ae)] beta'_a <= 0
       lower: sum_a [F0 + Fmax + s dP (Phi_la - Phi_l,ae)] beta'_a >= 0"""
-    F0 = case.links["flow_mw"].to_numpy(float)
-    Fmax = case.links["limit_mw"].to_numpy(float)
-    shift = (ev.sigma * ev.dP)[:, None, None] * (Phi[None, :, :] - Phi[:, ev.area].T[:, :, None])
-    W_up = (F0 - Fmax)[None, :, None] + shift
-    W_lo = (F0 + Fmax)[None, :, None] + shift
-    return W_up / Fmax[None, :, None], W_lo / Fmax[None, :, None]
+    inst = np.arange(len(hz.dP)) if inst is None else inst
+    t = hz.inst_t[inst]
+    Phi = hz.Phi[t]  # (M, L, A)
+    ae = hz.inst_area[inst]
+    Phi_e = np.take_along_axis(Phi, ae[:, None, None], axis=2)  # (M, L, 1)
+    shift = (hz.sigma[inst] * hz.dP[inst])[:, None, None] * (Phi - Phi_e)
+    F0, Fmax = hz.F0[t][:, :, None], hz.Fmax[t][:, :, None]
+    return (F0 - Fmax + shift) / Fmax, (F0 + Fmax + shift) / Fmax
 
 
-def _rows_flows(lp, case, ev: Events, K, G, ud, classes, unit_class, n_k, Phi, x_hat, elastic):
+def _rows_flows(lp, hz: Horizon, K, G, ginfo, x_hat, elastic):
     """Exact post-event link limits in the multiply-by-beta' form, beta'_a = sum_k c_k G_ak
-    (- c_j K_j for the tripped unit) + D_a, with c = (1 - d/x)^+ at the settled guess x."""
-    n_e, n_l, n_a = len(ev.names), len(case.links), len(case.areas)
-    live = np.nonzero(ev.dP > 0)[0]
-    W_up, W_lo = flow_weights(case, ev, Phi)
-    c = effective_factor(classes, x_hat)  # (E, K)
-    D_a = case.load_damping_mw_per_hz()
+    (- c_j K_j for a tripped provider) + D_a, with c = (1 - d/x)^+ at the settled guess x."""
+    group_of_t, n_a, n_k, classes = ginfo
+    N = hz.N
+    n_l = hz.F0.shape[1]
+    live = np.nonzero(hz.dP > 0)[0]
+    ne = len(live)
+    W_up, W_lo = flow_weights(hz, live)
+    c = effective_factor(classes, x_hat[live])  # (E', K)
+    D = hz.D_a[hz.inst_t[live]]  # (E', A)
+    g = group_of_t[hz.inst_t[live]]
+    gcols = G.idx((g[:, None] * n_a * n_k + np.arange(n_a * n_k)[None, :]))  # (E', A*K)
+    te_abs, j = _trip_live(hz, live)
+    te = np.searchsorted(live, te_abs)
+    cj = np.clip(1.0 - hz.d_hz[j] / np.where(x_hat[te_abs] > 0, x_hat[te_abs], np.inf), 0, 1)
+    kcol = K.idx(hz.block[hz.inst_t[te_abs]] * N + j)
     for name, W, sense in (("flow_hi", W_up, "hi"), ("flow_lo", W_lo, "lo")):
-        W = W[live]  # (E', L, A)
-        ne = len(live)
-        # coefficient of G_ak in row (e, l): W[e, l, a] * c[e, k]
-        coef = W[:, :, :, None] * c[live][:, None, None, :]  # (E', L, A, K)
+        coef = W[:, :, :, None] * c[:, None, None, :]  # (E', L, A, K)
         rows = np.repeat(np.arange(ne * n_l), n_a * n_k)
-        cols = np.tile(G.idx(), ne * n_l)
+        cols = np.repeat(gcols, n_l, axis=0).reshape(-1)
         vals = coef.reshape(-1)
-        rhs = -(W * D_a[None, None, :]).sum(axis=2).reshape(-1)
-        # tripped providers: -W[e, l, a_e] c_j K_j
-        te = np.nonzero((ev.trip[live] >= 0))[0]
-        te = te[ud.capable[ev.trip[live][te]]]
+        rhs = -(W * D[:, None, :]).sum(axis=2).reshape(-1)
         if len(te):
-            j = ev.trip[live][te]
-            cj = effective_factor(ud.d_hz[j], x_hat[live][te]).diagonal()
-            tv = -W[te, :, ev.area[live][te]] * cj[:, None]  # (T, L)
+            tv = -W[te, :, hz.inst_area[te_abs]] * cj[:, None]  # (T', L)
             rows = np.r_[rows, (te[:, None] * n_l + np.arange(n_l)[None, :]).reshape(-1)]
-            cols = np.r_[cols, np.repeat(K.idx(j), n_l)]
+            cols = np.r_[cols, np.repeat(kcol, n_l)]
             vals = np.r_[vals, tv.reshape(-1)]
         if elastic:
             S = lp.add_vars("slack_" + name, ne * n_l, 0.0, np.inf, cost=ELASTIC_PENALTY)
@@ -314,30 +445,34 @@ def _rows_flows(lp, case, ev: Events, K, G, ud, classes, unit_class, n_k, Phi, x
             lp.add_rows(name, ne * n_l, rows, cols, vals, lo=rhs)
 
 
-def _rows_change(lp, case, K, ud, info_steps, part_cols, part_unit, relax):
-    """Indicator c_i = 1 when unit i leaves its droop_now setting (only with a penalty)."""
+def _rows_change(lp, case, hz: Horizon, K, st, relax):
+    """Indicator c_bi = 1 when unit i leaves its droop_now setting in block b (only with a
+    penalty)."""
     pen = case.droop.change_penalty_per_unit
-    has_now = ~np.isnan(ud.K_now)
-    units = np.nonzero(has_now)[0] if pen > 0 else np.zeros(0, np.int64)
-    if len(units) == 0:
-        return units
-    m = len(units)
+    N, B = hz.N, hz.n_blocks
+    has_now = ~np.isnan(hz.K_now)
+    if pen <= 0 or not has_now.any():
+        return np.zeros(0, np.int64)
+    flat = (np.arange(B)[:, None] * N + np.nonzero(has_now)[0][None, :]).reshape(-1)
+    m = len(flat)
     C = lp.add_vars("changed", m, 0.0, 1.0, cost=pen, integer=not relax)
-    zg, zu, zs = info_steps
+    zg, zu, zb, zs = st
+    units = flat % N
     if zg is not None:
         now = case.units["droop_now_pct"].to_numpy(float)
-        match = np.isclose(zs, now[zu], rtol=0, atol=1e-9)
-        local = {u: k for k, u in enumerate(units)}
-        sel = match & np.isin(zu, units)
-        rows = np.r_[np.arange(m), [local[u] for u in zu[sel]]].astype(np.int64)
+        local = np.full(B * N, -1)
+        local[flat] = np.arange(m)
+        zflat = zb * N + zu
+        sel = np.isclose(zs, now[zu], rtol=0, atol=1e-9) & (local[zflat] >= 0)
+        rows = np.r_[np.arange(m), local[zflat[sel]]]
         cols = np.r_[C.idx(), lp.var_blocks["z"].idx()[sel]]
         lp.add_rows("change", m, rows, cols, np.ones(len(rows)), lo=1.0)
     else:
-        Kn = ud.K_now[units]
-        up = np.maximum(ud.K_hi[units] - Kn, 0.0)
+        Kn = hz.K_now[units]
+        up = np.maximum(hz.K_hi_b.reshape(-1)[flat] - Kn, 0.0)
         i = np.arange(m)
-        lp.add_rows("change_up", m, np.r_[i, i], np.r_[K.idx(units), C.idx()],
+        lp.add_rows("change_up", m, np.r_[i, i], np.r_[K.idx(flat), C.idx()],
                     np.r_[np.ones(m), -up], hi=Kn)
-        lp.add_rows("change_dn", m, np.r_[i, i], np.r_[K.idx(units), C.idx()],
+        lp.add_rows("change_dn", m, np.r_[i, i], np.r_[K.idx(flat), C.idx()],
                     np.r_[np.ones(m), Kn], lo=Kn)
-    return units
+    return flat

@@ -117,6 +117,7 @@ EVENT_COLS = [
     Col("unit", "text", False, ""),
     Col("area", "text", False, ""),
     Col("size_mw", "float", False, math.nan),
+    Col("period", "text", False, ""),
 ]
 EVENT_KINDS = ("unit_trip", "load_step")
 
@@ -126,6 +127,7 @@ _NUM_RE = re.compile(r"^[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?$")
 @dataclass
 class _Table:
     file: str
+    header_line: int
     header: list[str]
     rows: list[list[str]]
     lines: list[int]  # physical line number of each data row
@@ -180,7 +182,7 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
                 continue
         rows.append(cells)
         lines.append(line_no)
-    return _Table(label, header, rows, lines)
+    return _Table(label, header_line, header, rows, lines)
 
 
 def _parse_float(s: str) -> float | None:
@@ -193,9 +195,11 @@ def _parse_float(s: str) -> float | None:
     return v if math.isfinite(v) else None
 
 
-def _typed_table(t: _Table, cols: list[Col], col: _Collector) -> pd.DataFrame | None:
-    """Check header and cells; return a typed DataFrame with defaults filled, plus a line column."""
-    header_line = 1 if not t.lines else min(t.lines) - 1
+def _typed_table(t: _Table, cols: list[Col], col: _Collector,
+                 unknown_hint: dict[str, str] | None = None) -> pd.DataFrame | None:
+    """Check header and cells; return a typed DataFrame with defaults filled, plus a line column.
+    unknown_hint: columns that are an error here (with the reason) rather than ignored."""
+    header_line = t.header_line
     known = {c.name for c in cols}
     ok = True
     for c in cols:
@@ -203,7 +207,10 @@ def _typed_table(t: _Table, cols: list[Col], col: _Collector) -> pd.DataFrame | 
             col.error(t.file, "required column is missing", header_line, c.name)
             ok = False
     for h in t.header:
-        if h and h not in known:
+        if h and unknown_hint and h in unknown_hint:
+            col.error(t.file, unknown_hint[h], header_line, h)
+            ok = False
+        elif h and h not in known:
             col.warn(t.file, "unknown column ignored", header_line, h)
     if not ok:
         return None
@@ -252,7 +259,7 @@ def _typed_table(t: _Table, cols: list[Col], col: _Collector) -> pd.DataFrame | 
     for c in cols:
         if c.kind == "float":
             df[c.name] = df[c.name].astype(float)
-        elif c.kind == "bool":
+        elif c.kind == "bool" and c.default is not None:
             df[c.name] = df[c.name].astype(bool)
         else:
             df[c.name] = df[c.name].astype(object)
@@ -269,7 +276,9 @@ _TOML_SCHEMA: dict[str, dict[str, str]] = {
         "max_nadir_deviation_hz": "pos",
         "max_rocof_hz_per_s": "pos",
     },
-    "droop": {"steps_pct": "poslist", "change_penalty_per_unit": "nonneg"},
+    "droop": {"steps_pct": "poslist", "change_penalty_per_unit": "nonneg",
+              "hold_periods": "posint"},
+    "horizon": {"period_hours": "pos"},
     "solver": {"time_limit_s": "pos", "mip_gap": "nonneg"},
 }
 
@@ -338,6 +347,10 @@ def _read_toml(path: Path, label: str, col: _Collector) -> dict[str, Any] | None
                     col.error(label, f"must be >= 0, got {v}", line, where)
                     continue
                 v = float(v)
+            elif kind == "posint":
+                if isinstance(v, bool) or not isinstance(v, int) or v < 1:
+                    col.error(label, f"must be a whole number >= 1, got {v!r}", line, where)
+                    continue
             elif kind == "poslist":
                 if not isinstance(v, list) or not v or not all(
                     isinstance(x, (int, float)) and not isinstance(x, bool)
@@ -386,8 +399,23 @@ def load_case(path: str | Path) -> Case:
         t = _read_csv(p, lab(name), col)
         tables[name] = _typed_table(t, cols, col) if t is not None else None
 
+    series_raw: dict[str, pd.DataFrame] = {}
+    for key, (idc, cols) in SERIES.items():
+        p = folder / f"{key}_by_period.csv"
+        if p.is_file():
+            t = _read_csv(p, lab(p.name), col)
+            if t is not None:
+                over = [Col(c.name, c.kind, False,
+                            math.nan if c.kind == "float" else None, c.check)
+                        for c in cols if c.name in SERIES_COLS[key]]
+                df = _typed_table(t, [Col("period", "text", True), Col(idc, "text", True)]
+                                  + over, col, unknown_hint=SERIES_HINT[key])
+                if df is not None:
+                    series_raw[key] = df
     for extra in sorted(folder.glob("*_by_period.csv")):
-        col.warn(lab(extra.name), "time series are not used by a single-snapshot solve; ignored")
+        if extra.name.split("_by_period")[0] not in SERIES:
+            col.warn(lab(extra.name), "unknown time-series file ignored (expected units_, "
+                     "areas_ or links_by_period.csv)")
 
     units, areas = tables["units.csv"], tables["areas.csv"]
     links, events = tables["links.csv"], tables["events.csv"]
@@ -419,8 +447,18 @@ def load_case(path: str | Path) -> Case:
     if areas is not None and len(areas) > 1 and not col.problems:
         _check_connected(areas, links, lab("links.csv"), col)
 
+    periods: tuple = ()
+    hours: tuple = ()
+    series: dict[str, pd.DataFrame] = {}
+    if not col.problems and (series_raw or (events is not None and (events["period"] != "").any())):
+        periods, hours, series = _check_series(
+            folder, series_raw, units, areas, links, events, settings, col)
+
     col.raise_if_any()
     assert units is not None and areas is not None and events is not None
+    events["period"] = events["period"].map(lambda v: v if v else None).astype(object)
+    if not periods and events["period"].notna().any():
+        pass
 
     f_n = settings.get("nominal_frequency_hz")
     if f_n is None:
@@ -469,8 +507,142 @@ def load_case(path: str | Path) -> Case:
         events=events.drop(columns="_line").reset_index(drop=True),
         path=folder,
         warnings=tuple(col.warnings),
+        periods=periods,
+        period_hours=hours,
+        series=series,
+        hold_periods=settings.get("droop.hold_periods"),
     )
     return case.replace(read_time_s=time.perf_counter() - t0)
+
+
+# ------------------------------------------------------------------ time series
+SERIES = {"units": ("unit", UNIT_COLS), "areas": ("area", AREA_COLS),
+          "links": ("link", LINK_COLS)}
+SERIES_COLS = {
+    "units": {"output_mw", "min_output_mw", "reserve_up_max_mw", "reserve_down_max_mw",
+              "price_up_per_mw_h", "price_down_per_mw_h", "provides"},
+    "areas": {"load_mw", "load_damping_pct_per_hz", "min_own_reserve_mw"},
+    "links": {"limit_mw", "flow_mw", "reactance_pu"},
+}
+_SETTING = "is a setting of the unit, not a time series (it cannot vary by period)"
+SERIES_HINT = {
+    "units": {c: _SETTING for c in ("area", "capacity_mw", "droop_min_pct", "droop_max_pct",
+                                    "droop_now_pct", "deadband_mhz", "inertia_s",
+                                    "activation_time_s")},
+    "areas": {},
+    "links": {c: "is a property of the link, not a time series" for c in ("from_area",
+                                                                          "to_area")},
+}
+
+
+def _period_key(label: str):
+    """Integers sort as numbers, anything else must be an ISO-8601 timestamp."""
+    if re.fullmatch(r"[+-]?\d+", label):
+        return ("int", int(label))
+    try:
+        ts = pd.Timestamp(label)
+    except (ValueError, TypeError):
+        return None
+    if ts is pd.NaT:
+        return None
+    return ("time", ts)
+
+
+def _check_series(folder, series_raw, units, areas, links, events, settings, col):
+    """Validate the *_by_period tables against the static ones; return the period labels in
+    order, their lengths in hours and the override tables (NaN = keep the static value)."""
+    ids = {"units": set(units["unit"]), "areas": set(areas["area"]), "links": set(links["link"])}
+    sets: dict[str, set] = {}
+    keys: dict[str, tuple] = {}
+    bad = False
+    for key, df in series_raw.items():
+        idc = SERIES[key][0]
+        file = str(folder / f"{key}_by_period.csv")
+        seen: dict[tuple, int] = {}
+        for per, i, line in zip(df["period"], df[idc], df["_line"]):
+            k = _period_key(per)
+            if k is None:
+                col.error(file, f"period '{per[:40]}' is neither an integer nor an ISO-8601 "
+                          "timestamp", int(line), "period")
+                bad = True
+                continue
+            keys[per] = k
+            if i not in ids[key]:
+                col.error(file, f"unknown {idc} '{i}' (not in {key}.csv)", int(line), idc)
+            if (per, i) in seen:
+                col.error(file, f"duplicate row for period '{per}' and {idc} '{i}' (first at "
+                          f"row {seen[(per, i)]})", int(line), idc)
+            seen[(per, i)] = int(line)
+        sets[key] = set(df["period"])
+    ev_file = str(folder / "events.csv")
+    ev_periods = [(p, int(ln)) for p, ln in zip(events["period"], events["_line"]) if p]
+    for per, line in ev_periods:
+        k = _period_key(per)
+        if k is None:
+            col.error(ev_file, f"period '{per[:40]}' is neither an integer nor an ISO-8601 "
+                      "timestamp", line, "period")
+            bad = True
+        else:
+            keys[per] = k
+    if bad:
+        return (), (), {}
+    kinds = {k[0] for k in keys.values()}
+    if len(kinds) > 1:
+        col.error(str(folder), "periods mix integers and timestamps; use one kind throughout")
+        return (), (), {}
+    if sets:
+        names = sorted(sets)
+        ref = sets[names[0]]
+        for other in names[1:]:
+            if sets[other] != ref:
+                diff = sorted(ref.symmetric_difference(sets[other]), key=lambda p: keys[p][1])
+                col.error(str(folder / f"{other}_by_period.csv"), "periods differ from "
+                          f"{names[0]}_by_period.csv (e.g. '{diff[0]}'): every time-series file "
+                          "must list the same periods")
+                return (), (), {}
+        labels = ref
+        for per, line in ev_periods:
+            if per not in labels:
+                col.error(ev_file, f"period '{per}' is not a period of the time series", line,
+                          "period")
+    else:
+        labels = {p for p, _ in ev_periods}
+    # same instant written two ways ("2026-01-01T00:00" and "2026-01-01 00:00") is one period
+    order = sorted(labels, key=lambda p: keys[p][1])
+    if len({keys[p][1] for p in order}) != len(order):
+        col.error(str(folder), "two period labels name the same period")
+        return (), (), {}
+    period_hours = settings.get("horizon.period_hours")
+    if kinds == {"time"} and len(order) > 1:
+        ts = [keys[p][1] for p in order]
+        gaps = [(b - a).total_seconds() / 3600.0 for a, b in zip(ts[:-1], ts[1:])]
+        hours = gaps + [period_hours if period_hours else gaps[-1]]
+    else:
+        hours = [period_hours if period_hours else 1.0] * len(order)
+    # value checks on the combined (static + override) data
+    if "units" in series_raw:
+        _check_unit_series(series_raw["units"], units, str(folder / "units_by_period.csv"), col)
+    out = {}
+    for key, df in series_raw.items():
+        idc = SERIES[key][0]
+        keep = ["period", idc] + [c for c in df.columns if c in SERIES_COLS[key]]
+        out[key] = df[keep].reset_index(drop=True)
+    return tuple(order), tuple(float(h) for h in hours), out
+
+
+def _check_unit_series(ser, units, file, col):
+    base = units.set_index("unit")
+    for _, r in ser.iterrows():
+        if r["unit"] not in base.index:
+            continue
+        b = base.loc[r["unit"]]
+        out = r["output_mw"] if "output_mw" in r and not pd.isna(r["output_mw"]) else b["output_mw"]
+        mn = (r["min_output_mw"] if "min_output_mw" in r and not pd.isna(r["min_output_mw"])
+              else b["min_output_mw"])
+        cap = b["capacity_mw"]
+        if not (mn <= out <= cap):
+            col.error(file, f"output_mw {out:g} outside [min_output_mw {mn:g}, capacity_mw "
+                      f"{cap:g}] in period '{r['period']}'", int(r["_line"]), "output_mw")
 
 
 def _check_units(u: pd.DataFrame, file: str, area_ids: set[str] | None, col: _Collector):
@@ -515,6 +687,7 @@ def _check_events(ev: pd.DataFrame, file: str, units: pd.DataFrame, area_ids: se
     unit_area = dict(zip(units["unit"], units["area"]))
     unit_out = dict(zip(units["unit"], units["output_mw"]))
     areas_out, sizes = [], []
+    from_output = np.zeros(len(ev), dtype=bool)
     for _, r in ev.iterrows():
         line = int(r["_line"])
         kind, size, area = r["kind"], r["size_mw"], r["area"]
@@ -534,6 +707,7 @@ def _check_events(ev: pd.DataFrame, file: str, units: pd.DataFrame, area_ids: se
                 area = unit_area[u]
                 if math.isnan(size):
                     size = unit_out[u]
+                    from_output[len(sizes)] = True
                 if size == 0:
                     col.warn(file, f"unit '{u}' trips at zero output: no disturbance", line,
                              "size_mw")
@@ -553,6 +727,7 @@ def _check_events(ev: pd.DataFrame, file: str, units: pd.DataFrame, area_ids: se
         sizes.append(size)
     ev["area"] = areas_out
     ev["size_mw"] = np.asarray(sizes, float)
+    ev["size_from_output"] = from_output
 
 
 def _check_connected(areas: pd.DataFrame, links: pd.DataFrame, file: str, col: _Collector):

@@ -35,7 +35,7 @@ class Result:
 
     case: object
     status: str
-    objective_per_h: float
+    objective_per_h: float | None
     mip_gap: float | None
     allocation: pd.DataFrame
     events: pd.DataFrame
@@ -46,64 +46,89 @@ class Result:
     iterations: int = 1
     relaxed: bool = False
     change_penalty_total: float = 0.0
+    objective_total: float | None = None
 
     # ------------------------------------------------------------------ construction
     @classmethod
     def build(cls, case, info, lp, out, gain, r_up, r_dn, points, relax, verification):
-        f_n = case.nominal_frequency_hz
+        """Tables from per-period arrays (T, N) and the independent settled points."""
+        hz = info.hz
+        T, N = gain.shape
+        horizon = case.is_horizon
+        labels = list(case.periods) if horizon else [None]
         F = case.limits.max_settled_deviation_hz
         u = case.units
-        droop = case.droop_from_gain(gain)
+        K_b = lp.value(out.x, "K").reshape(hz.n_blocks, N)
+        droop_b = np.where(K_b > 1e-9, case.droop_from_gain(np.where(K_b > 1e-9, K_b, 1.0)),
+                           np.nan)
         if info.steps_gain is not None and not relax:
-            z = lp.value(out.x, "z")
-            chosen = z > 0.5
-            droop = np.full(len(u), np.nan)
-            droop[info.steps_unit[chosen]] = info.steps_pct[chosen]
-        cost = (u["price_up_per_mw_h"].to_numpy(float) * r_up
-                + u["price_down_per_mw_h"].to_numpy(float) * r_dn)
-        allocation = pd.DataFrame({
-            "unit": u["unit"].to_numpy(object),
-            "area": u["area"].to_numpy(object),
-            "provides": gain > 0,
-            "droop_pct": droop,
-            "gain_mw_per_hz": gain,
-            "headroom_up_mw": r_up,
-            "headroom_down_mw": r_dn,
-            "cost_per_h": cost,
+            chosen = lp.value(out.x, "z") > 0.5
+            droop_b = np.full((hz.n_blocks, N), np.nan)
+            droop_b[info.steps_block[chosen], info.steps_unit[chosen]] = info.steps_pct[chosen]
+        droop = droop_b[hz.block]  # (T, N)
+        cost = hz.price_up * r_up + hz.price_dn * r_dn  # per hour, (T, N)
+        alloc = {
+            "unit": np.tile(u["unit"].to_numpy(object), T),
+            "area": np.tile(u["area"].to_numpy(object), T),
+        }
+        if horizon:
+            alloc["period"] = np.repeat(np.array(labels, dtype=object), N)
+        alloc.update({
+            "provides": (gain > 0).reshape(-1),
+            "droop_pct": droop.reshape(-1),
+            "gain_mw_per_hz": gain.reshape(-1),
+            "headroom_up_mw": r_up.reshape(-1),
+            "headroom_down_mw": r_dn.reshape(-1),
+            "cost_per_h": cost.reshape(-1),
         })
-        ev = case.events
-        dev = np.array([p.deviation_hz for p in points])
-        events = pd.DataFrame({
-            "event": ev["event"].to_numpy(object),
-            "kind": ev["kind"].to_numpy(object),
-            "area": ev["area"].to_numpy(object),
-            "size_mw": ev["size_mw"].to_numpy(float),
-            "settled_frequency_hz": f_n + dev,
-            "settled_deviation_hz": dev,
-            "limit_hz": np.full(len(ev), F),
-            "binding": F - np.abs(dev) <= BINDING_HZ,
-            "marginal_cost_per_mw_h": np.full(len(ev), np.nan),
-        })
-        lk = case.links
-        rows = []
-        for p in points:
-            for k in range(len(lk)):
-                lim = float(lk["limit_mw"].iloc[k])
-                after = float(p.flow_after_mw[k])
-                rows.append((lk["link"].iloc[k], p.event, float(lk["flow_mw"].iloc[k]), after,
-                             lim, abs(after) / lim * 100.0))
-        links = pd.DataFrame(rows, columns=["link", "event", "flow_before_mw", "flow_after_mw",
-                                            "limit_mw", "loading_pct"])
+        allocation = pd.DataFrame(alloc)
+        ev_rows, link_rows = [], []
+        for t, (snap, pts) in enumerate(zip(hz.snaps, points)):
+            ev = snap.events
+            lk = snap.links
+            for k, p in enumerate(pts):
+                e = ev.iloc[k]
+                row = {"event": str(e["event"])}
+                if horizon:
+                    row["period"] = labels[t]
+                row.update({"kind": e["kind"], "area": e["area"], "size_mw": float(e["size_mw"]),
+                            "settled_frequency_hz": case.nominal_frequency_hz + p.deviation_hz,
+                            "settled_deviation_hz": p.deviation_hz, "limit_hz": F,
+                            "binding": bool(F - abs(p.deviation_hz) <= BINDING_HZ),
+                            "marginal_cost_per_mw_h": np.nan})
+                ev_rows.append(row)
+                for li in range(len(lk)):
+                    lim = float(lk["limit_mw"].iloc[li])
+                    after = float(p.flow_after_mw[li])
+                    r = {"link": str(lk["link"].iloc[li]), "event": p.event}
+                    if horizon:
+                        r["period"] = labels[t]
+                    r.update({"flow_before_mw": float(lk["flow_mw"].iloc[li]),
+                              "flow_after_mw": after, "limit_mw": lim,
+                              "loading_pct": abs(after) / lim * 100.0})
+                    link_rows.append(r)
+        ecols = ["event"] + (["period"] if horizon else []) + [
+            "kind", "area", "size_mw", "settled_frequency_hz", "settled_deviation_hz", "limit_hz",
+            "binding", "marginal_cost_per_mw_h"]
+        lcols = ["link", "event"] + (["period"] if horizon else []) + [
+            "flow_before_mw", "flow_after_mw", "limit_mw", "loading_pct"]
+        events = pd.DataFrame(ev_rows, columns=ecols)
+        events["binding"] = events["binding"].astype(bool)
+        links = pd.DataFrame(link_rows, columns=lcols)
         pen = 0.0
         if "changed" in lp.var_blocks:
-            pen = float(case.droop.change_penalty_per_unit * np.round(lp.value(out.x, "changed"))
-                        .sum())
+            pen = float(case.droop.change_penalty_per_unit
+                        * np.round(lp.value(out.x, "changed")).sum())
+        total = float((cost * hz.hours[:, None]).sum() + pen)
         status = out.status if not relax else f"{out.status}_relaxed"
-        return cls(case=case, status=status, objective_per_h=float(cost.sum() + pen),
-                   mip_gap=out.mip_gap, allocation=allocation, events=events, links=links,
-                   solver={"name": "HiGHS", "version": out.solver_version,
-                           "interface": out.engine},
-                   verification=verification, relaxed=relax, change_penalty_total=pen)
+        res = cls(case=case, status=status,
+                  objective_per_h=None if horizon else total,
+                  mip_gap=out.mip_gap, allocation=allocation, events=events, links=links,
+                  solver={"name": "HiGHS", "version": out.solver_version,
+                          "interface": out.engine},
+                  verification=verification, relaxed=relax, change_penalty_total=pen)
+        res.objective_total = total if horizon else None
+        return res
 
     def set_event_prices(self, price_per_mw_h) -> None:
         self.events["marginal_cost_per_mw_h"] = np.asarray(price_per_mw_h, float)
@@ -122,25 +147,49 @@ class Result:
             "case": case.name,
             "status": self.status,
             "objective_per_h": _num(self.objective_per_h),
-            "objective_total": None,
-            "headroom_cost_per_h": _num(float(self.allocation["cost_per_h"].sum())),
+            "objective_total": _num(self.objective_total),
+            "periods": self.case.n_periods,
+            "horizon_hours": _num(float(self.case.hours().sum())),
             "change_penalty": _num(self.change_penalty_total),
             "mip_gap": _num(self.mip_gap),
             "solver": dict(self.solver),
             "solver_name": self.solver.get("name"),
             "solver_version": self.solver.get("version"),
             "optreserve_version": __version__,
-            "units_providing": int(self.allocation["provides"].sum()),
-            "headroom_up_mw": _num(float(self.allocation["headroom_up_mw"].sum())),
-            "headroom_down_mw": _num(float(self.allocation["headroom_down_mw"].sum())),
-            "binding_events": [str(e) for e in ev.loc[ev["binding"], "event"]],
+            "units_providing": int(self.allocation.loc[self.allocation["provides"], "unit"]
+                                   .nunique()),
+            "headroom_up_mw": _num(self._peak("headroom_up_mw")),
+            "headroom_down_mw": _num(self._peak("headroom_down_mw")),
+            "binding_events": sorted({str(e) for e in ev.loc[ev["binding"], "event"]}),
             "binding_links": sorted({f"{r.link}@{r.event}" for r in
                                      self.binding_links.itertuples()}),
+            "binding_event_instances": int(ev["binding"].sum()),
             "verification": {k: _num(v) for k, v in self.verification.items()},
             "dead_band_iterations": self.iterations,
             "timings_s": {k: round(float(v), 4) for k, v in self.timings_s.items()},
             "caution": CAUTION,
         }
+
+    def _peak(self, col: str) -> float:
+        """Total over units; for a horizon the largest period total."""
+        a = self.allocation
+        if "period" in a.columns:
+            return float(a.groupby("period", sort=False)[col].sum().max())
+        return float(a[col].sum())
+
+    def schedule_wide(self) -> pd.DataFrame:
+        """Units x periods headroom (rows: unit and direction) for spreadsheet users."""
+        a = self.allocation
+        if "period" not in a.columns:
+            a = a.assign(period="snapshot")
+        parts = []
+        for direction, col in (("up", "headroom_up_mw"), ("down", "headroom_down_mw")):
+            w = a.pivot(index="unit", columns="period", values=col)
+            w = w.reindex(index=list(dict.fromkeys(a["unit"])),
+                          columns=list(dict.fromkeys(a["period"])))
+            w.insert(0, "direction", direction)
+            parts.append(w.reset_index())
+        return pd.concat(parts, ignore_index=True)
 
     # ------------------------------------------------------------------ writing
     def write(self, out_dir: str | Path, force: bool = False) -> Path:
@@ -160,6 +209,8 @@ class Result:
             write_table(self.allocation, tmp / "allocation.csv")
             write_table(self.events, tmp / "events.csv")
             write_table(self.links, tmp / "links.csv")
+            if self.case.is_horizon:
+                write_table(self.schedule_wide(), tmp / "schedule_wide.csv")
             self.timings_s["write"] = time.perf_counter() - t0
             self.timings_s["total"] = self.timings_s.get("total", 0.0) + self.timings_s["write"]
             (tmp / "summary.json").write_text(json.dumps(self.summary, indent=2) + "\n")

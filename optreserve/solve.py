@@ -11,7 +11,7 @@ import pandas as pd
 from .backends import Outcome, solve_highs, solve_program
 from .case import Case
 from .errors import InfeasibleError, SolverError, VerificationError
-from .model import ModelInfo, build_model, effective_factor, flow_weights
+from .model import Horizon, ModelInfo, build_model, effective_factor, prepare
 from .program import LinearProgram
 from .results import Result
 from .settle import settle_case
@@ -37,20 +37,23 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     mip_gap = mip_gap if mip_gap is not None else case.solver.mip_gap
     opts = dict(time_limit=time_limit, mip_gap=mip_gap, verbose=verbose)
 
-    t_build = t_solve = 0.0
+    t0 = time.perf_counter()
+    hz = prepare(case)
+    t_build = time.perf_counter() - t0
+    t_solve = 0.0
     x_hat = None
     iterations = 0
     history = []
     while True:
         iterations += 1
         t0 = time.perf_counter()
-        lp, info = build_model(case, x_hat=x_hat, relax=relax)
+        lp, info = build_model(case, x_hat=x_hat, relax=relax, hz=hz)
         t_build += time.perf_counter() - t0
         out = solve_program(lp, engine=engine, **opts)
         t_solve += out.solve_time_s
-        if out.status in ("infeasible",):
+        if out.status == "infeasible":
             if iterations == 1:
-                raise diagnose(case)
+                raise diagnose(case, hz)
             # the dead-band guess moved into an infeasible corner: keep the last good answer
             lp, info, out = history[-1]
             break
@@ -60,9 +63,8 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         history.append((lp, info, out))
         if not _needs_fixed_point(info):
             break
-        gain, r_up, r_dn = _unit_values(lp, out.x)
-        exact = np.abs([p.deviation_hz for p in settle_case(case, gain, r_up, r_dn)])
-        live = info.ev.dP > 0
+        exact = np.abs(_exact_deviation(info, lp, out.x))
+        live = hz.dP > 0
         if np.all(np.abs(exact - info.x_hat)[live] <= FIXED_POINT_TOL_HZ) or (
                 iterations >= FIXED_POINT_MAX_ITER):
             break
@@ -71,63 +73,73 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     result = _make_result(case, lp, info, out, relax)
     result.iterations = iterations
     _attach_prices(result, lp, info, out)
-    result.timings_s.update(read=case_read_time(case), build=t_build, solve=t_solve, write=0.0,
-                            total=time.perf_counter() - t_start + case_read_time(case))
+    result.timings_s.update(read=case.read_time_s, build=t_build, solve=t_solve, write=0.0,
+                            total=time.perf_counter() - t_start + case.read_time_s)
     return result
 
 
-def case_read_time(case: Case) -> float:
-    return float(case.read_time_s)
-
-
 def _needs_fixed_point(info: ModelInfo) -> bool:
-    ud = info.ud
-    return bool(len(info.case.links) and (ud.d_hz[ud.capable] > 0).any()
-                and (info.ev.dP > 0).any())
+    hz = info.hz
+    return bool(len(info.case.links) and (hz.d_hz[hz.capable_b.any(axis=0)] > 0).any()
+                and (hz.dP > 0).any())
 
 
-def _unit_values(lp: LinearProgram, x: np.ndarray):
-    gain = np.where(lp.value(x, "K") > 1e-9, lp.value(x, "K"), 0.0)
-    r_up = np.where(lp.value(x, "r_up") > 1e-9, lp.value(x, "r_up"), 0.0)
-    r_dn = np.where(lp.value(x, "r_dn") > 1e-9, lp.value(x, "r_dn"), 0.0)
-    return gain, r_up, r_dn
+def period_values(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
+    """Per period (T, N): gain that responds, up and down headroom."""
+    hz = info.hz
+    N, T = hz.N, hz.T
+    K = lp.value(x, "K").reshape(hz.n_blocks, N)
+    K = np.where(K > 1e-9, K, 0.0)
+    gain = K[hz.block] * hz.avail
+    r_up = lp.value(x, "r_up").reshape(T, N)
+    r_dn = lp.value(x, "r_dn").reshape(T, N)
+    return gain, np.where(r_up > 1e-9, r_up, 0.0), np.where(r_dn > 1e-9, r_dn, 0.0)
+
+
+def exact_points(info: ModelInfo, lp: LinearProgram, x: np.ndarray):
+    """Independent settled points of every period's events: list (per period) of lists."""
+    gain, r_up, r_dn = period_values(lp, info, x)
+    return [settle_case(s, gain[t], r_up[t], r_dn[t]) for t, s in enumerate(info.hz.snaps)]
+
+
+def _exact_deviation(info, lp, x) -> np.ndarray:
+    return np.array([p.deviation_hz for pts in exact_points(info, lp, x) for p in pts])
 
 
 def model_prediction(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
-    """The optimiser's own view of each event: settled |df| = dP / beta' and link flows
-    from the multiply-by-beta' form, at the gains it chose."""
-    case, ev, ud = info.case, info.ev, info.ud
+    """The optimiser's own view of each event instance: settled |df| = dP / beta' and link
+    flows from the multiply-by-beta' form, at the gains it chose."""
+    hz = info.hz
+    N = hz.N
+    n_a, n_k = len(info.case.areas), len(info.classes)
     K = lp.value(x, "K")
-    n_a = len(case.areas)
-    G = lp.value(x, "G").reshape(n_a, len(info.classes))
-    c = effective_factor(info.classes, info.x_hat)  # (E, classes)
-    D_a = case.load_damping_mw_per_hz()
-    beta = (G[None, :, :] * c[:, None, :]).sum(axis=2) + D_a[None, :]  # (E, A)
-    for e, j in enumerate(ev.trip):
-        if j >= 0:
-            beta[e, ev.area[e]] -= effective_factor(ud.d_hz[[j]], info.x_hat[[e]])[0, 0] * K[j]
+    G = lp.value(x, "G").reshape(-1, n_a, n_k)
+    t = hz.inst_t
+    c = effective_factor(info.classes, info.x_hat)  # (M, K)
+    beta = (G[info.group_of_t[t]] * c[:, None, :]).sum(axis=2) + hz.D_a[t]  # (M, A)
+    for m, j in enumerate(hz.trip):
+        if j >= 0 and hz.avail[t[m], j]:
+            cj = effective_factor(hz.d_hz[[j]], info.x_hat[[m]])[0, 0]
+            beta[m, hz.inst_area[m]] -= cj * K[hz.block[t[m]] * N + j]
     B = beta.sum(axis=1)
     with np.errstate(divide="ignore", invalid="ignore"):
-        dev = np.where(ev.dP > 0, ev.dP / B, 0.0)
-    F0 = case.links["flow_mw"].to_numpy(float)
-    if len(case.links):
-        share = beta / B[:, None]  # (E, A)
-        Phi = info.Phi
-        flows = F0[None, :] + (ev.sigma * ev.dP)[:, None] * (
-            share @ Phi.T - Phi[:, ev.area].T)
-        flows[ev.dP == 0] = F0
-    else:
-        flows = np.zeros((len(ev.names), 0))
+        dev = np.where(hz.dP > 0, hz.dP / B, 0.0)
+        share = beta / B[:, None]
+    Phi = hz.Phi[t]  # (M, L, A)
+    F0 = hz.F0[t]
+    Phi_e = np.take_along_axis(Phi, hz.inst_area[:, None, None], axis=2)[:, :, 0]
+    flows = F0 + (hz.sigma * hz.dP)[:, None] * (np.einsum("mla,ma->ml", Phi, share) - Phi_e)
+    flows[hz.dP == 0] = F0[hz.dP == 0]
     return dev, flows
 
 
 def _make_result(case: Case, lp: LinearProgram, info: ModelInfo, out: Outcome,
                  relax: bool) -> Result:
-    gain, r_up, r_dn = _unit_values(lp, out.x)
-    points = settle_case(case, gain, r_up, r_dn)
+    points = exact_points(info, lp, out.x)
+    flat = [p for pts in points for p in pts]
     dev_model, flow_model = model_prediction(lp, info, out.x)
-    dev_exact = np.array([abs(p.deviation_hz) for p in points])
-    flows_exact = np.array([p.flow_after_mw for p in points]).reshape(len(points), -1)
+    dev_exact = np.array([abs(p.deviation_hz) for p in flat])
+    flows_exact = np.array([p.flow_after_mw for p in flat]).reshape(len(flat), -1)
     dis_f = float(np.max(np.abs(dev_exact - dev_model), initial=0.0))
     dis_p = float(np.max(np.abs(flows_exact - flow_model), initial=0.0))
     if not np.all(np.isfinite(dev_exact)) or dis_f > AGREE_HZ or dis_p > AGREE_MW:
@@ -137,13 +149,14 @@ def _make_result(case: Case, lp: LinearProgram, info: ModelInfo, out: Outcome,
             f" {AGREE_MW} MW)")
     F = case.limits.max_settled_deviation_hz
     viol_f = dev_exact - F
-    lim = case.links["limit_mw"].to_numpy(float)
-    viol_p = np.abs(flows_exact) - lim[None, :]
+    lim = info.hz.Fmax[info.hz.inst_t] if len(case.links) else np.zeros((len(flat), 0))
+    viol_p = np.abs(flows_exact) - lim
     if (viol_f > 1e-5).any() or (viol_p > 1e-3 * np.maximum(1.0, lim / 100)).any():
         raise VerificationError(
             "the allocation breaks a limit after independent recalculation: "
-            f"worst settled excess {max(viol_f.max(), 0) * 1000:.4f} mHz, worst link excess "
-            f"{max(viol_p.max(initial=0), 0):.4f} MW")
+            f"worst settled excess {max(viol_f.max(initial=0), 0) * 1000:.4f} mHz, worst link "
+            f"excess {max(viol_p.max(initial=0), 0):.4f} MW")
+    gain, r_up, r_dn = period_values(lp, info, out.x)
     return Result.build(case, info, lp, out, gain, r_up, r_dn, points, relax,
                         {"max_frequency_disagreement_hz": dis_f,
                          "max_flow_disagreement_mw": dis_p})
@@ -151,15 +164,17 @@ def _make_result(case: Case, lp: LinearProgram, info: ModelInfo, out: Outcome,
 
 def _attach_prices(result: Result, lp: LinearProgram, info: ModelInfo, out: Outcome) -> None:
     """Marginal cost of event size: dual of each settled-deviation row, read from the LP
-    with every integer decision fixed at its optimum (usual market practice)."""
+    with every integer decision fixed at its optimum (usual market practice), per hour of
+    the event's period."""
     fixed = _fixed_lp(lp, out.x)
     o = solve_highs(fixed, want_duals=True)
     if o.row_dual is None:
         return
     rows = lp.row_blocks["settled"].slice
+    hz = info.hz
     # the row reads  sum(...) >= |dP| - F D: one more MW of event raises the bound by one
-    price = np.abs(o.row_dual[rows])
-    price[info.ev.dP == 0] = 0.0
+    price = np.abs(o.row_dual[rows]) / hz.hours[hz.inst_t]
+    price[hz.dP == 0] = 0.0
     result.set_event_prices(price)
 
 
@@ -179,55 +194,61 @@ def _fixed_lp(lp: LinearProgram, x: np.ndarray) -> LinearProgram:
 
 
 # ------------------------------------------------------------------ infeasibility
-def diagnose(case: Case) -> InfeasibleError:
+def diagnose(case: Case, hz: Horizon | None = None) -> InfeasibleError:
     """Re-solve with penalised slacks on every limit family and report the smallest relaxation
-    that makes the case feasible, in engineering terms."""
-    lp, info = build_model(case, elastic=True)
+    that makes the case feasible, in engineering terms (recomputed independently)."""
+    lp, info = build_model(case, elastic=True, hz=hz)
+    hz = info.hz
     out = solve_program(lp, engine="highspy")
-    rows = []
     if out.x is None:
         return InfeasibleError("no allocation can meet the limits (diagnosis failed: "
                                f"{out.status})")
-    gain, r_up, r_dn = _unit_values(lp, out.x)
-    points = settle_case(case, gain, r_up, r_dn)
+    points = exact_points(info, lp, out.x)
+    labels = [str(p) for p in case.periods] if case.is_horizon else [""]
     F = case.limits.max_settled_deviation_hz
     s_set = lp.value(out.x, "slack_settled")
-    for k, p in enumerate(points):
-        if s_set[k] > 1e-6:
-            dev = abs(p.deviation_hz)
-            rows.append({"family": "event", "element": p.event, "event": p.event,
-                         "short_mw": float(s_set[k]),
-                         "excess_hz": float(dev - F) if np.isfinite(dev) else float("inf"),
-                         "over_mw": 0.0})
-    lim = case.links["limit_mw"].to_numpy(float)
-    for p in points:
-        over = np.abs(p.flow_after_mw) - lim
-        for li in np.nonzero(over > 1e-3)[0]:
-            rows.append({"family": "link", "element": str(case.links["link"].iloc[li]),
-                         "event": p.event, "short_mw": 0.0, "excess_hz": 0.0,
-                         "over_mw": float(over[li])})
-    if "slack_own" in lp.var_blocks:
-        own = case.areas["min_own_reserve_mw"].to_numpy(float)
-        areas = np.nonzero(own > 0)[0]
-        s_own = lp.value(out.x, "slack_own")
-        for k, a in enumerate(areas):
-            if s_own[k] > 1e-6:
-                rows.append({"family": "area", "element": str(case.areas["area"].iloc[a]),
-                             "event": "", "short_mw": float(s_own[k]), "excess_hz": 0.0,
+    rows = []
+    m = 0
+    for t, pts in enumerate(points):
+        lk = hz.snaps[t].links
+        for p in pts:
+            if s_set[m] > 1e-6:
+                dev = abs(p.deviation_hz)
+                rows.append({"family": "event", "element": p.event, "event": p.event,
+                             "period": labels[t], "short_mw": float(s_set[m]),
+                             "excess_hz": float(dev - F) if np.isfinite(dev) else float("inf"),
                              "over_mw": 0.0})
-    diag = pd.DataFrame(rows, columns=["family", "element", "event", "short_mw", "excess_hz",
-                                       "over_mw"])
+            over = np.abs(p.flow_after_mw) - lk["limit_mw"].to_numpy(float)
+            for li in np.nonzero(over > 1e-3)[0]:
+                rows.append({"family": "link", "element": str(lk["link"].iloc[li]),
+                             "event": p.event, "period": labels[t], "short_mw": 0.0,
+                             "excess_hz": 0.0, "over_mw": float(over[li])})
+            m += 1
+    if "slack_own" in lp.var_blocks:
+        ta, aa = np.nonzero(hz.own > 0)
+        s_own = lp.value(out.x, "slack_own")
+        for k in np.nonzero(s_own > 1e-6)[0]:
+            rows.append({"family": "area", "element": str(case.areas["area"].iloc[aa[k]]),
+                         "event": "", "period": labels[ta[k]], "short_mw": float(s_own[k]),
+                         "excess_hz": 0.0, "over_mw": 0.0})
+    cols = ["family", "element", "event", "period", "short_mw", "excess_hz", "over_mw"]
+    diag = pd.DataFrame(rows, columns=cols)
+    if not case.is_horizon:
+        diag = diag.drop(columns="period")
     lines = []
     for r in rows:
+        when = f" in period {r['period']}" if r["period"] else ""
         if r["family"] == "event":
-            lines.append(f"event {r['element']}: {r['short_mw']:.1f} MW of response missing at "
-                         f"the limit (settles {r['excess_hz'] * 1000:.1f} mHz beyond "
+            lines.append(f"event {r['element']}{when}: {r['short_mw']:.1f} MW of response "
+                         f"missing at the limit (settles {r['excess_hz'] * 1000:.1f} mHz beyond "
                          f"{F * 1000:.0f} mHz)")
         elif r["family"] == "link":
             lines.append(f"link {r['element']}: {r['over_mw']:.1f} MW over its limit after "
-                         f"event {r['event']}")
+                         f"event {r['event']}{when}")
         else:
-            lines.append(f"area {r['element']}: own reserve {r['short_mw']:.1f} MW short")
+            lines.append(f"area {r['element']}{when}: own reserve {r['short_mw']:.1f} MW short")
     if not lines:
         lines.append("the limits conflict in a way no single relaxation explains")
+    if len(lines) > 20:
+        lines = lines[:20] + [f"... and {len(lines) - 20} more (see diagnosis.csv)"]
     return InfeasibleError("no allocation can meet the limits", lines, diag)
