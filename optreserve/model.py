@@ -450,10 +450,13 @@ def _rows_change(lp, case, hz: Horizon, K, st, relax):
     penalty)."""
     pen = case.droop.change_penalty_per_unit
     N, B = hz.N, hz.n_blocks
-    has_now = ~np.isnan(hz.K_now)
+    # only units that could provide in the block: a unit that cannot carry reserve keeps
+    # whatever setting it has, and that is no change proposed by the study
+    has_now = (~np.isnan(hz.K_now))[None, :] & hz.capable_b
     if pen <= 0 or not has_now.any():
         return np.zeros(0, np.int64)
-    flat = (np.arange(B)[:, None] * N + np.nonzero(has_now)[0][None, :]).reshape(-1)
+    bb, ii = np.nonzero(has_now)
+    flat = bb * N + ii
     m = len(flat)
     C = lp.add_vars("changed", m, 0.0, 1.0, cost=pen, integer=not relax)
     zg, zu, zb, zs = st
