@@ -84,6 +84,65 @@ class Case:
             return np.zeros(T, dtype=np.int64)
         return np.arange(T, dtype=np.int64) // int(self.hold_periods)
 
+    # --- per-period matrices (T rows; a snapshot has T = 1), overrides applied, vectorised ---
+    def _matrix(self, table: str, col: str) -> np.ndarray:
+        key = (table, col)
+        cache = self.__dict__.setdefault("_matrix_cache", {})
+        if key in cache:
+            return cache[key]
+        idc = {"units": "unit", "areas": "area", "links": "link"}[table]
+        base = getattr(self, table)
+        vals = base[col].to_numpy()
+        M = np.repeat(vals[None, :], self.n_periods, axis=0)
+        ser = self.series.get(table)
+        if self.is_horizon and ser is not None and col in ser.columns and len(ser):
+            v = ser[col].to_numpy()
+            keep = ~pd.isna(v)
+            if keep.any():
+                tpos = self._period_pos()
+                ipos = {x: k for k, x in enumerate(base[idc])}
+                t = ser["period"].map(tpos).to_numpy()[keep]
+                i = ser[idc].map(ipos).to_numpy()[keep]
+                M = M.copy()
+                M[t, i] = v[keep].astype(M.dtype)
+        M.setflags(write=False)
+        cache[key] = M
+        return M
+
+    def _period_pos(self) -> dict:
+        return {p: k for k, p in enumerate(self.periods)}
+
+    def unit_matrix(self, col: str) -> np.ndarray:
+        return self._matrix("units", col)
+
+    def area_matrix(self, col: str) -> np.ndarray:
+        return self._matrix("areas", col)
+
+    def link_matrix(self, col: str) -> np.ndarray:
+        return self._matrix("links", col)
+
+    def instances(self) -> pd.DataFrame:
+        """Every event in every period it applies to, period-major: columns event_index, t,
+        size_mw (signed; a trip without size_mw follows the unit's output in that period)."""
+        ev = self.events
+        T = self.n_periods
+        per = ev["period"].to_numpy(object) if "period" in ev.columns else np.full(len(ev), None)
+        tpos = self._period_pos()
+        applies = np.ones((T, len(ev)), dtype=bool)
+        for k, p in enumerate(per):
+            if p is not None and p == p:
+                applies[:, k] = False
+                applies[tpos[p], k] = True
+        t, e = np.nonzero(applies)
+        size = ev["size_mw"].to_numpy(float)[e]
+        if "size_from_output" in ev.columns:
+            from_out = ev["size_from_output"].to_numpy(bool)[e]
+            if from_out.any():
+                upos = {u: k for k, u in enumerate(self.units["unit"])}
+                j = np.array([upos.get(u, 0) for u in ev["unit"]])[e]
+                size = np.where(from_out, self.unit_matrix("output_mw")[t, j], size)
+        return pd.DataFrame({"event_index": e, "t": t, "size_mw": size})
+
     def snapshots(self) -> list["Case"]:
         """One static case per period (overrides applied, events of that period only)."""
         if not self.is_horizon:

@@ -51,11 +51,19 @@ def cmd_check(args) -> int:
           + ("steps " + ", ".join(f"{s:g}" for s in case.droop.steps_pct) + " %"
              if case.droop.steps_pct else "continuous inside each band"))
     cap = event_capability(case)
+    if "period" in cap.columns:  # one line per event: its tightest period
+        cap = cap.assign(_r=cap["offered_gain_mw_per_hz"] / cap["needed_gain_mw_per_hz"]
+                         .where(cap["needed_gain_mw_per_hz"] > 0))
+        cap = cap.loc[cap.groupby("event", sort=False)["_r"].idxmin().fillna(0).astype(int)]
+        print(f"{case.n_periods} periods ({case.hours().sum():g} h), droop "
+              + ("fixed over the horizon" if case.hold_periods is None else
+                 f"held for {case.hold_periods} period(s)") + "; per event its tightest period:")
     rows = []
     for r in cap.itertuples():
         ratio = r.offered_gain_mw_per_hz / r.needed_gain_mw_per_hz if r.needed_gain_mw_per_hz \
             else float("inf")
-        rows.append([str(r.event), f"{r.size_mw:.1f}", f"{r.needed_gain_mw_per_hz:.1f}",
+        rows.append([str(r.event) + (f" @ {r.period}" if hasattr(r, "period") else ""),
+                     f"{r.size_mw:.1f}", f"{r.needed_gain_mw_per_hz:.1f}",
                      f"{r.offered_gain_mw_per_hz:.1f}",
                      "ok" if r.short_mw <= 0 else f"SHORT {r.short_mw:.1f} MW",
                      f"{ratio:.2f}"])
@@ -128,7 +136,7 @@ def _print_result(result: Result, out_dir: Path | None) -> None:
     else:
         cost = f"cost {s['objective_per_h']:.2f} per hour"
     print(f"case {s['case']!r}: {s['status']}, {cost}{gap}")
-    print(f"{s['units_providing']} of {len(result.allocation)} units provide; headroom "
+    print(f"{s['units_providing']} of {len(result.case.units)} units provide; peak headroom "
           f"{s['headroom_up_mw']:.1f} MW up, {s['headroom_down_mw']:.1f} MW down")
     ev = result.events.assign(
         margin_hz=result.events["limit_hz"] - result.events["settled_deviation_hz"].abs())
@@ -166,6 +174,27 @@ def _print_result(result: Result, out_dir: Path | None) -> None:
         extra = " schedule_wide.csv" if result.case.is_horizon else ""
         print(f"wrote {out_dir}: allocation.csv events.csv links.csv{extra} summary.json")
     print(CAUTION)
+
+
+# ------------------------------------------------------------------ generate
+def cmd_generate(args) -> int:
+    from .generate import Spec, generate
+
+    out = Path(args.out)
+    if out.exists() and any(out.iterdir()) and not args.force:
+        raise _OutputBusy(out)
+    try:
+        spec = Spec(units=args.units, areas=args.areas, links=args.links, periods=args.periods,
+                    events=args.events, seed=args.seed)
+        generate(spec, out)
+    except ValueError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_INPUT
+    if not args.quiet:
+        print(f"wrote synthetic case to {out} ({args.units} units, {args.areas} areas, "
+              f"{args.links} links, {args.periods} periods, {args.events} events, seed "
+              f"{args.seed})")
+    return EXIT_OK
 
 
 # ------------------------------------------------------------------ entry point
@@ -206,6 +235,23 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--verbose", action="store_true", help="show the HiGHS log")
     s.add_argument("--quiet", action="store_true", help="print nothing on success")
     s.set_defaults(func=cmd_solve)
+
+    g = sub.add_parser("generate", help="write a synthetic day-ahead case",
+                       description="Write a synthetic but plausible day-ahead case (mixed "
+                                   "technologies, daily load shape, merit-order outputs, meshed "
+                                   "areas); the same files for the same seed.")
+    g.add_argument("--units", type=int, default=300, metavar="N", help="units (default 300)")
+    g.add_argument("--areas", type=int, default=5, metavar="A", help="areas (default 5)")
+    g.add_argument("--links", type=int, default=8, metavar="L", help="links (default 8)")
+    g.add_argument("--periods", type=int, default=96, metavar="T", help="periods in the day "
+                   "(default 96, quarter-hours)")
+    g.add_argument("--events", type=int, default=10, metavar="E", help="events, each applying "
+                   "in every period (default 10)")
+    g.add_argument("--seed", type=int, default=1, metavar="S", help="random seed (default 1)")
+    g.add_argument("--out", required=True, metavar="DIR", help="folder to write the case into")
+    g.add_argument("--force", action="store_true", help="write into a non-empty folder")
+    g.add_argument("--quiet", action="store_true", help="print nothing on success")
+    g.set_defaults(func=cmd_generate)
     return p
 
 

@@ -64,34 +64,44 @@ class UnitData:
     K_now: np.ndarray  # NaN where droop_now_pct not given
 
 
-def unit_data(case: Case, need_up: bool, need_dn: bool) -> UnitData:
+def capability(case: Case, out, mn, up_cap, dn_cap, provides, need_up, need_dn):
+    """What each unit can give, broadcast over leading period axes: (K_hi, capable, R_up,
+    R_dn). need_up/need_dn say whether up/down headroom is required (scalars or (T, 1))."""
     u = case.units
     f_n = case.nominal_frequency_hz
     cap = u["capacity_mw"].to_numpy(float)
-    out = u["output_mw"].to_numpy(float)
-    mn = u["min_output_mw"].to_numpy(float)
     d = u["deadband_mhz"].to_numpy(float) / 1000.0
     K_lo = cap / (u["droop_max_pct"].to_numpy(float) / 100.0 * f_n)
     K_band = cap / (u["droop_min_pct"].to_numpy(float) / 100.0 * f_n)
-    up_cap = u["reserve_up_max_mw"].to_numpy(float)
-    dn_cap = u["reserve_down_max_mw"].to_numpy(float)
     R_up = np.maximum(0.0, np.fmin(cap - out, np.where(np.isnan(up_cap), np.inf, up_cap)))
     R_dn = np.maximum(0.0, np.fmin(out - mn, np.where(np.isnan(dn_cap), np.inf, dn_cap)))
-    provides = u["provides"].to_numpy(bool)
     a_act = np.maximum(case.limits.full_activation_deviation_hz - d, 0.0)
-    inf = np.full_like(cap, np.inf)
     with np.errstate(divide="ignore", invalid="ignore"):
-        lim_up = np.where(a_act > 0, R_up / a_act, np.inf) if need_up else inf
-        lim_dn = np.where(a_act > 0, R_dn / a_act, np.inf) if need_dn else inf
+        lim_up = np.where(need_up & (a_act > 0), R_up / a_act, np.inf)
+        lim_dn = np.where(need_dn & (a_act > 0), R_dn / a_act, np.inf)
     K_hi = np.minimum(K_band, np.minimum(lim_up, lim_dn))
     capable = provides & (K_hi >= K_lo * (1 - 1e-12))
     K_hi = np.where(capable, K_hi, 0.0)
-    now = u["droop_now_pct"].to_numpy(float)
+    return K_hi, capable, np.where(provides, R_up, 0.0), np.where(provides, R_dn, 0.0)
+
+
+def unit_data(case: Case, need_up: bool, need_dn: bool) -> UnitData:
+    """UnitData of a single snapshot."""
+    u = case.units
+    f_n = case.nominal_frequency_hz
+    cap = u["capacity_mw"].to_numpy(float)
+    d = u["deadband_mhz"].to_numpy(float) / 1000.0
+    K_hi, capable, R_up, R_dn = capability(
+        case, u["output_mw"].to_numpy(float), u["min_output_mw"].to_numpy(float),
+        u["reserve_up_max_mw"].to_numpy(float), u["reserve_down_max_mw"].to_numpy(float),
+        u["provides"].to_numpy(bool), need_up, need_dn)
     with np.errstate(divide="ignore", invalid="ignore"):
-        K_now = cap / (now / 100.0 * f_n)
-    R_up = np.where(provides, R_up, 0.0)
-    R_dn = np.where(provides, R_dn, 0.0)
-    return UnitData(K_lo, K_hi, capable, d, R_up, R_dn, a_act, case.unit_area_index(), K_now)
+        K_now = cap / (u["droop_now_pct"].to_numpy(float) / 100.0 * f_n)
+    return UnitData(
+        K_lo=cap / (u["droop_max_pct"].to_numpy(float) / 100.0 * f_n), K_hi=K_hi,
+        capable=capable, d_hz=d, R_up=R_up, R_dn=R_dn,
+        a_act=np.maximum(case.limits.full_activation_deviation_hz - d, 0.0),
+        area=case.unit_area_index(), K_now=K_now)
 
 
 @dataclass
@@ -102,7 +112,7 @@ class Horizon:
     Built once per solve and reused by every dead-band iteration."""
 
     case: Case
-    snaps: list[Case]
+    snaps: list  # unused (kept empty): everything is stacked in arrays
     T: int
     hours: np.ndarray  # (T,)
     block: np.ndarray  # (T,) droop block of each period
@@ -146,51 +156,59 @@ class Horizon:
 
 
 def prepare(case: Case) -> Horizon:
-    snaps = case.snapshots()
-    T = len(snaps)
-    evs = [Events.of(s) for s in snaps]
-    need_up = np.array([bool((e.dP[e.sigma > 0] > 0).any()) for e in evs])
-    need_dn = np.array([bool((e.dP[e.sigma < 0] > 0).any()) for e in evs])
-    uds = [unit_data(s, bool(nu), bool(nd)) for s, nu, nd in zip(snaps, need_up, need_dn)]
-    u0 = uds[0]
-    K_hi_t = np.array([x.K_hi for x in uds])
-    avail = np.array([x.capable for x in uds])
+    """Stack the case over periods and event instances (no per-period DataFrames)."""
+    T = case.n_periods
+    N = len(case.units)
+    apos = {a: k for k, a in enumerate(case.areas["area"])}
+    upos = {u: k for k, u in enumerate(case.units["unit"])}
+    ev = case.events
+    inst = case.instances()
+    e = inst["event_index"].to_numpy()
+    size = inst["size_mw"].to_numpy(float)
+    inst_t = inst["t"].to_numpy().astype(np.int64)
+    dP = np.abs(size)
+    sigma = np.where(size < 0, -1.0, 1.0)
+    ev_area = np.array([apos[a] for a in ev["area"]], dtype=np.int64)
+    ev_trip = np.array([upos.get(u, -1) if k == "unit_trip" else -1
+                        for k, u in zip(ev["kind"], ev["unit"])], dtype=np.int64)
+    need_up = np.bincount(inst_t, weights=(sigma > 0) & (dP > 0), minlength=T) > 0
+    need_dn = np.bincount(inst_t, weights=(sigma < 0) & (dP > 0), minlength=T) > 0
+    um = case.unit_matrix
+    K_hi_t, avail, R_up, R_dn = capability(
+        case, um("output_mw").astype(float), um("min_output_mw").astype(float),
+        um("reserve_up_max_mw").astype(float), um("reserve_down_max_mw").astype(float),
+        um("provides").astype(bool), need_up[:, None], need_dn[:, None])
+    u0 = unit_data(case, bool(need_up.any()), bool(need_dn.any()))
     block = case.blocks()
     B = int(block.max()) + 1
-    big = np.where(avail, K_hi_t, np.inf)
-    K_hi_b = np.full((B, len(u0.K_lo)), np.inf)
-    np.minimum.at(K_hi_b, block, big)
+    K_hi_b = np.full((B, N), np.inf)
+    np.minimum.at(K_hi_b, block, np.where(avail, K_hi_t, np.inf))
     capable_b = np.isfinite(K_hi_b)
     K_hi_b = np.where(capable_b, K_hi_b, 0.0)
     # Phi once per distinct set of reactances
-    Phis, cache = [], {}
-    for s in snaps:
-        key = tuple(s.links["reactance_pu"].to_numpy(float))
-        if key not in cache:
-            cache[key] = ptdf(s)
-        Phis.append(cache[key])
-    n_l, n_a = len(case.links), len(case.areas)
+    X = case.link_matrix("reactance_pu").astype(float)
+    n_l, n_a = X.shape[1], len(case.areas)
+    Phi = np.zeros((T, n_l, n_a))
+    if n_l:
+        keys, first, inv = np.unique(X, axis=0, return_index=True, return_inverse=True)
+        for k, t0 in enumerate(first):
+            links = case.links.assign(reactance_pu=X[t0])
+            Phi[inv.reshape(-1) == k] = ptdf(case.replace(links=links))
+    damping = case.area_matrix("load_mw").astype(float) * case.area_matrix(
+        "load_damping_pct_per_hz").astype(float) / 100.0
     return Horizon(
-        case=case, snaps=snaps, T=T, hours=case.hours(), block=block, n_blocks=B,
+        case=case, snaps=[], T=T, hours=case.hours(), block=block, n_blocks=B,
         K_lo=u0.K_lo, K_band=case.gain_from_droop(case.units["droop_min_pct"]),
         d_hz=u0.d_hz, a_act=u0.a_act, area=u0.area, K_now=u0.K_now,
-        K_hi_t=K_hi_t, avail=avail,
-        R_up=np.array([x.R_up for x in uds]), R_dn=np.array([x.R_dn for x in uds]),
-        price_up=np.array([s.units["price_up_per_mw_h"].to_numpy(float) for s in snaps]),
-        price_dn=np.array([s.units["price_down_per_mw_h"].to_numpy(float) for s in snaps]),
-        need_up=need_up, need_dn=need_dn,
-        D_a=np.array([s.load_damping_mw_per_hz() for s in snaps]),
-        own=np.array([s.areas["min_own_reserve_mw"].to_numpy(float) for s in snaps]),
-        F0=np.array([s.links["flow_mw"].to_numpy(float) for s in snaps]).reshape(T, n_l),
-        Fmax=np.array([s.links["limit_mw"].to_numpy(float) for s in snaps]).reshape(T, n_l),
-        Phi=np.array(Phis).reshape(T, n_l, n_a),
-        inst_name=[n for e in evs for n in e.names],
-        inst_t=np.concatenate([np.full(len(e.names), t) for t, e in enumerate(evs)]).astype(
-            np.int64),
-        dP=np.concatenate([e.dP for e in evs]),
-        sigma=np.concatenate([e.sigma for e in evs]),
-        inst_area=np.concatenate([e.area for e in evs]).astype(np.int64),
-        trip=np.concatenate([e.trip for e in evs]).astype(np.int64),
+        K_hi_t=K_hi_t, avail=avail, R_up=R_up, R_dn=R_dn,
+        price_up=um("price_up_per_mw_h").astype(float),
+        price_dn=um("price_down_per_mw_h").astype(float),
+        need_up=need_up, need_dn=need_dn, D_a=damping,
+        own=case.area_matrix("min_own_reserve_mw").astype(float),
+        F0=case.link_matrix("flow_mw").astype(float).reshape(T, n_l),
+        Fmax=case.link_matrix("limit_mw").astype(float).reshape(T, n_l), Phi=Phi,
+        inst_name=[str(x) for x in ev["event"].to_numpy(object)[e]], inst_t=inst_t,
+        dP=dP, sigma=sigma, inst_area=ev_area[e], trip=ev_trip[e],
         K_hi_b=K_hi_b, capable_b=capable_b,
     )
 
@@ -423,17 +441,35 @@ def _rows_flows(lp, hz: Horizon, K, G, ginfo, x_hat, elastic):
     te = np.searchsorted(live, te_abs)
     cj = np.clip(1.0 - hz.d_hz[j] / np.where(x_hat[te_abs] > 0, x_hat[te_abs], np.inf), 0, 1)
     kcol = K.idx(hz.block[hz.inst_t[te_abs]] * N + j)
-    for name, W, sense in (("flow_hi", W_up, "hi"), ("flow_lo", W_lo, "lo")):
-        coef = W[:, :, :, None] * c[:, None, None, :]  # (E', L, A, K)
-        rows = np.repeat(np.arange(ne * n_l), n_a * n_k)
-        cols = np.repeat(gcols, n_l, axis=0).reshape(-1)
-        vals = coef.reshape(-1)
-        rhs = -(W * D[:, None, :]).sum(axis=2).reshape(-1)
+    if n_k > 1:
+        # several dead-band classes: one auxiliary beta'_ea per (event, area) keeps each flow
+        # row at A terms instead of A x classes (the dominant block of the model)
+        Bv = lp.add_vars("beta", ne * n_a, -np.inf, np.inf)
+        rows = np.r_[np.arange(ne * n_a), np.repeat(np.arange(ne * n_a), n_k)]
+        cols = np.r_[Bv.idx(), gcols.reshape(-1)]
+        vals = np.r_[np.ones(ne * n_a), -np.repeat(c, n_a, axis=0).reshape(-1)]
         if len(te):
-            tv = -W[te, :, hz.inst_area[te_abs]] * cj[:, None]  # (T', L)
-            rows = np.r_[rows, (te[:, None] * n_l + np.arange(n_l)[None, :]).reshape(-1)]
-            cols = np.r_[cols, np.repeat(kcol, n_l)]
-            vals = np.r_[vals, tv.reshape(-1)]
+            rows = np.r_[rows, te * n_a + hz.inst_area[te_abs]]
+            cols = np.r_[cols, kcol]
+            vals = np.r_[vals, cj]
+        lp.add_rows("beta_def", ne * n_a, rows, cols, vals, lo=0.0, hi=0.0)
+        bcols = Bv.idx().reshape(ne, n_a)
+    for name, W, sense in (("flow_hi", W_up, "hi"), ("flow_lo", W_lo, "lo")):
+        rhs = -(W * D[:, None, :]).sum(axis=2).reshape(-1)
+        if n_k > 1:
+            rows = np.repeat(np.arange(ne * n_l), n_a)
+            cols = np.repeat(bcols, n_l, axis=0).reshape(-1)
+            vals = W.reshape(-1)
+        else:
+            coef = W[:, :, :, None] * c[:, None, None, :]  # (E', L, A, K)
+            rows = np.repeat(np.arange(ne * n_l), n_a * n_k)
+            cols = np.repeat(gcols, n_l, axis=0).reshape(-1)
+            vals = coef.reshape(-1)
+            if len(te):
+                tv = -W[te, :, hz.inst_area[te_abs]] * cj[:, None]  # (T', L)
+                rows = np.r_[rows, (te[:, None] * n_l + np.arange(n_l)[None, :]).reshape(-1)]
+                cols = np.r_[cols, np.repeat(kcol, n_l)]
+                vals = np.r_[vals, tv.reshape(-1)]
         if elastic:
             S = lp.add_vars("slack_" + name, ne * n_l, 0.0, np.inf, cost=ELASTIC_PENALTY)
             rows = np.r_[rows, np.arange(ne * n_l)]

@@ -8,6 +8,7 @@ up to MAX_PROBLEMS; the caller gets a CaseError and nothing else happens.
 from __future__ import annotations
 
 import csv
+import functools
 import math
 import re
 import time
@@ -55,7 +56,8 @@ class _Collector:
 
     def raise_if_any(self) -> None:
         if self.problems:
-            probs = list(self.problems)
+            order = {f: k for k, f in enumerate(dict.fromkeys(p.file for p in self.problems))}
+            probs = sorted(self.problems, key=lambda p: (order[p.file], p.row or 0))
             if self.dropped:
                 probs.append(Problem(probs[-1].file, f"... and {self.dropped} more problems"))
             raise CaseError(probs)
@@ -172,8 +174,9 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
             col.error(label, f"column '{h}' appears twice in the header", header_line, h)
         seen.add(h)
     rows, lines = [], []
-    for line_no, ln in numbered[1:]:
-        cells = [c.strip() for c in next(csv.reader([ln]))]
+    parsed = csv.reader([ln for _, ln in numbered[1:]])
+    for (line_no, _), cells in zip(numbered[1:], parsed):
+        cells = [c.strip() for c in cells]
         if len(cells) != len(header):
             if len(cells) > len(header) and all(c == "" for c in cells[len(header):]):
                 cells = cells[: len(header)]
@@ -215,55 +218,68 @@ def _typed_table(t: _Table, cols: list[Col], col: _Collector,
     if not ok:
         return None
     pos = {h: k for k, h in enumerate(t.header)}
-    data: dict[str, list] = {c.name: [] for c in cols}
-    ids_seen: dict[str, int] = {}
-    for cells, line in zip(t.rows, t.lines):
-        for c in cols:
-            raw = cells[pos[c.name]] if c.name in pos else ""
-            if raw == "":
-                if c.required:
-                    col.error(t.file, "value is required", line, c.name)
-                data[c.name].append(c.default)
-                continue
-            if c.kind in ("id", "text"):
-                val: Any = raw
-                if c.kind == "id":
-                    if raw in ids_seen:
-                        col.error(
-                            t.file, f"duplicate id '{raw}' (first at row {ids_seen[raw]})",
-                            line, c.name,
-                        )
-                    else:
-                        ids_seen[raw] = line
-            elif c.kind == "float":
-                val = _parse_float(raw)
-                if val is None:
-                    low = raw.lower().lstrip("+-")
-                    what = "NaN/inf is not allowed" if low in ("nan", "inf", "infinity") else (
-                        "is not a finite number" if _NUM_RE.match(raw) else "is not a number")
-                    col.error(t.file, f"{what}: '{raw[:40]}'", line, c.name)
-                    val = c.default
-                elif c.check is not None and (msg := c.check(val)) is not None:
-                    col.error(t.file, f"{msg} (got {raw})", line, c.name)
-            elif c.kind == "bool":
-                low = raw.lower()
-                if low in TRUE_WORDS:
-                    val = True
-                elif low in FALSE_WORDS:
-                    val = False
-                else:
-                    col.error(t.file, f"expected true or false, got '{raw[:40]}'", line, c.name)
-                    val = c.default
-            data[c.name].append(val)
-    df = pd.DataFrame(data)
-    for c in cols:
-        if c.kind == "float":
-            df[c.name] = df[c.name].astype(float)
-        elif c.kind == "bool" and c.default is not None:
-            df[c.name] = df[c.name].astype(bool)
+    lines = np.asarray(t.lines, dtype=np.int64)
+    n = len(t.rows)
+    df = pd.DataFrame(index=range(n))
+    for c in cols:  # column by column, vectorised; a loop only over the bad cells
+        if c.name in pos:
+            k = pos[c.name]
+            raw = np.array([r[k] for r in t.rows], dtype=object) if n else np.zeros(0, object)
         else:
-            df[c.name] = df[c.name].astype(object)
-    df["_line"] = t.lines
+            raw = np.full(n, "", dtype=object)
+        empty = raw == ""
+        if c.required:
+            for r in np.nonzero(empty)[0]:
+                col.error(t.file, "value is required", int(lines[r]), c.name)
+        if c.kind in ("id", "text"):
+            vals = np.where(empty, c.default if c.default is not None else "", raw)
+            if c.kind == "id":
+                ser = pd.Series(raw)
+                dup = ser.duplicated(keep="first").to_numpy() & ~empty
+                first = dict(zip(ser[~ser.duplicated()], lines[~ser.duplicated().to_numpy()]))
+                for r in np.nonzero(dup)[0]:
+                    col.error(t.file, f"duplicate id '{raw[r]}' (first at row {first[raw[r]]})",
+                              int(lines[r]), c.name)
+            df[c.name] = pd.Series(vals, dtype=object)
+        elif c.kind == "float":
+            num = np.full(n, np.nan)
+            try:  # fast path: every non-empty cell is a plain number
+                num[~empty] = raw[~empty].astype(float)
+                ok_fmt = np.ones(n, dtype=bool)
+            except ValueError:
+                ok_fmt = np.array([bool(_NUM_RE.match(x)) for x in raw], dtype=bool)
+                sel = ok_fmt & ~empty
+                num[sel] = raw[sel].astype(float)
+            bad = ~empty & (~ok_fmt | ~np.isfinite(num))
+            for r in np.nonzero(bad)[0]:
+                x = raw[r]
+                low = x.lower().lstrip("+-")
+                what = "NaN/inf is not allowed" if low in ("nan", "inf", "infinity") else (
+                    "is not a finite number" if ok_fmt[r] else "is not a number")
+                col.error(t.file, f"{what}: '{x[:40]}'", int(lines[r]), c.name)
+            default = np.nan if c.default is None else float(c.default)
+            vals = np.where(empty | bad, default, num)
+            if c.check is not None:
+                for r in np.nonzero(~empty & ~bad)[0]:
+                    if (msg := c.check(vals[r])) is not None:
+                        col.error(t.file, f"{msg} (got {raw[r]})", int(lines[r]), c.name)
+            df[c.name] = vals.astype(float)
+        elif c.kind == "bool":
+            low = np.array([x.lower() for x in raw], dtype=object)
+            is_t = np.isin(low, list(TRUE_WORDS))
+            is_f = np.isin(low, list(FALSE_WORDS))
+            bad = ~empty & ~is_t & ~is_f
+            for r in np.nonzero(bad)[0]:
+                col.error(t.file, f"expected true or false, got '{raw[r][:40]}'",
+                          int(lines[r]), c.name)
+            if c.default is None:
+                v = np.full(n, None, dtype=object)
+                v[is_t] = True
+                v[is_f] = False
+                df[c.name] = pd.Series(v, dtype=object)
+            else:
+                df[c.name] = np.where(is_t, True, np.where(is_f, False, bool(c.default)))
+    df["_line"] = lines
     return df
 
 
@@ -535,6 +551,7 @@ SERIES_HINT = {
 }
 
 
+@functools.lru_cache(maxsize=100_000)
 def _period_key(label: str):
     """Integers sort as numbers, anything else must be an ISO-8601 timestamp."""
     if re.fullmatch(r"[+-]?\d+", label):
@@ -631,18 +648,20 @@ def _check_series(folder, series_raw, units, areas, links, events, settings, col
 
 
 def _check_unit_series(ser, units, file, col):
+    """output within [min_output, capacity] in every period, overrides applied (vectorised)."""
     base = units.set_index("unit")
-    for _, r in ser.iterrows():
-        if r["unit"] not in base.index:
-            continue
-        b = base.loc[r["unit"]]
-        out = r["output_mw"] if "output_mw" in r and not pd.isna(r["output_mw"]) else b["output_mw"]
-        mn = (r["min_output_mw"] if "min_output_mw" in r and not pd.isna(r["min_output_mw"])
-              else b["min_output_mw"])
-        cap = b["capacity_mw"]
-        if not (mn <= out <= cap):
-            col.error(file, f"output_mw {out:g} outside [min_output_mw {mn:g}, capacity_mw "
-                      f"{cap:g}] in period '{r['period']}'", int(r["_line"]), "output_mw")
+    known = ser["unit"].isin(base.index).to_numpy()
+    s = ser[known]
+    b = base.loc[s["unit"]]
+    out = s["output_mw"].fillna(pd.Series(b["output_mw"].to_numpy(), index=s.index))
+    mn = s["min_output_mw"].fillna(pd.Series(b["min_output_mw"].to_numpy(), index=s.index))
+    cap = b["capacity_mw"].to_numpy()
+    bad = ~((mn.to_numpy() <= out.to_numpy()) & (out.to_numpy() <= cap))
+    for k in np.nonzero(bad)[0]:
+        r = s.iloc[k]
+        col.error(file, f"output_mw {out.iloc[k]:g} outside [min_output_mw {mn.iloc[k]:g}, "
+                  f"capacity_mw {cap[k]:g}] in period '{r['period']}'", int(r["_line"]),
+                  "output_mw")
 
 
 def _check_units(u: pd.DataFrame, file: str, area_ids: set[str] | None, col: _Collector):

@@ -82,39 +82,34 @@ class Result:
             "cost_per_h": cost.reshape(-1),
         })
         allocation = pd.DataFrame(alloc)
-        ev_rows, link_rows = [], []
-        for t, (snap, pts) in enumerate(zip(hz.snaps, points)):
-            ev = snap.events
-            lk = snap.links
-            for k, p in enumerate(pts):
-                e = ev.iloc[k]
-                row = {"event": str(e["event"])}
-                if horizon:
-                    row["period"] = labels[t]
-                row.update({"kind": e["kind"], "area": e["area"], "size_mw": float(e["size_mw"]),
-                            "settled_frequency_hz": case.nominal_frequency_hz + p.deviation_hz,
-                            "settled_deviation_hz": p.deviation_hz, "limit_hz": F,
-                            "binding": bool(F - abs(p.deviation_hz) <= BINDING_HZ),
-                            "marginal_cost_per_mw_h": np.nan})
-                ev_rows.append(row)
-                for li in range(len(lk)):
-                    lim = float(lk["limit_mw"].iloc[li])
-                    after = float(p.flow_after_mw[li])
-                    r = {"link": str(lk["link"].iloc[li]), "event": p.event}
-                    if horizon:
-                        r["period"] = labels[t]
-                    r.update({"flow_before_mw": float(lk["flow_mw"].iloc[li]),
-                              "flow_after_mw": after, "limit_mw": lim,
-                              "loading_pct": abs(after) / lim * 100.0})
-                    link_rows.append(r)
-        ecols = ["event"] + (["period"] if horizon else []) + [
-            "kind", "area", "size_mw", "settled_frequency_hz", "settled_deviation_hz", "limit_hz",
-            "binding", "marginal_cost_per_mw_h"]
-        lcols = ["link", "event"] + (["period"] if horizon else []) + [
-            "flow_before_mw", "flow_after_mw", "limit_mw", "loading_pct"]
-        events = pd.DataFrame(ev_rows, columns=ecols)
-        events["binding"] = events["binding"].astype(bool)
-        links = pd.DataFrame(link_rows, columns=lcols)
+        M = len(hz.dP)
+        ev = case.events
+        e_idx = case.instances()["event_index"].to_numpy()
+        dev = points.deviation_hz
+        per = np.array(labels, dtype=object)[hz.inst_t]
+        events = pd.DataFrame({"event": ev["event"].to_numpy(object)[e_idx]})
+        if horizon:
+            events["period"] = per
+        events["kind"] = ev["kind"].to_numpy(object)[e_idx]
+        events["area"] = ev["area"].to_numpy(object)[e_idx]
+        events["size_mw"] = hz.sigma * hz.dP
+        events["settled_frequency_hz"] = case.nominal_frequency_hz + dev
+        events["settled_deviation_hz"] = dev
+        events["limit_hz"] = np.full(M, F)
+        events["binding"] = (F - np.abs(dev)) <= BINDING_HZ
+        events["marginal_cost_per_mw_h"] = np.full(M, np.nan)
+        L = hz.F0.shape[1]
+        links = pd.DataFrame({
+            "link": np.tile(case.links["link"].to_numpy(object), M),
+            "event": np.repeat(events["event"].to_numpy(object), L)})
+        if horizon:
+            links["period"] = np.repeat(per, L)
+        flows = points.flow_after_mw.reshape(-1)
+        lim = hz.Fmax[hz.inst_t].reshape(-1)
+        links["flow_before_mw"] = hz.F0[hz.inst_t].reshape(-1)
+        links["flow_after_mw"] = flows
+        links["limit_mw"] = lim
+        links["loading_pct"] = np.abs(flows) / lim * 100.0
         pen = 0.0
         if "changed" in lp.var_blocks:
             pen = float(case.droop.change_penalty_per_unit

@@ -11,6 +11,17 @@ from .model import Events, unit_data
 
 
 def event_capability(case: Case) -> pd.DataFrame:
+    """Per event (and period, for a horizon) needed and offered response; see _snapshot."""
+    if not case.is_horizon:
+        return _snapshot(case)
+    parts = []
+    for label, snap in zip(case.periods, case.snapshots()):
+        parts.append(_snapshot(snap).assign(period=label))
+    df = pd.concat(parts, ignore_index=True)
+    return df[["event", "period"] + [c for c in df.columns if c not in ("event", "period")]]
+
+
+def _snapshot(case: Case) -> pd.DataFrame:
     """One row per event: needed and offered response at the settled limit.
 
     needed_gain_mw_per_hz = |dP| / F (load self-regulation included on the offered side);

@@ -109,3 +109,102 @@ def settle_case(case: Case, gain, headroom_up, headroom_down) -> list[SettledPoi
                       if len(lk) else np.zeros(0))
         out.append(SettledPoint(str(e["event"]), -sign * x, sign * resp, sign * inj, flows))
     return out
+
+
+# ------------------------------------------------------------------ many events at once
+BISECTION_STEPS = 56
+
+
+def settle_batch(dP, gain, deadband_hz, headroom, damping_mw_per_hz) -> np.ndarray:
+    """Vectorised settle_deviation for M events at once: dP (M,), gain and headroom (M, N),
+    dead bands (N,), total load self-regulation (M,). Brackets the root by bisection on the
+    same piecewise-linear balance, then solves the linear piece that holds it exactly."""
+    dP = np.asarray(dP, float)
+    K = np.asarray(gain, float)
+    r = np.asarray(headroom, float)
+    d = np.asarray(deadband_hz, float)[None, :]
+    D = np.asarray(damping_mw_per_hz, float)
+    act = (K > 0) & (r > 0)
+    K = np.where(act, K, 0.0)
+    r = np.where(act, r, 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sat = np.where(act, d + r / np.where(act, K, 1.0), 0.0)
+        hi = np.maximum(sat.max(axis=1, initial=0.0), np.where(D > 0, dP / D, 0.0)) + 1e-9
+
+    def total(x):
+        return np.minimum(K * np.maximum(x[:, None] - d, 0.0), r).sum(axis=1) + D * x
+
+    no_point = (D <= 0) & (r.sum(axis=1) < dP)
+    lo = np.zeros_like(dP)
+    for _ in range(BISECTION_STEPS):
+        mid = 0.5 * (lo + hi)
+        above = total(mid) >= dP
+        hi = np.where(above, mid, hi)
+        lo = np.where(above, lo, mid)
+    m = 0.5 * (lo + hi)[:, None]
+    linear = act & (m > d) & (m < sat)
+    satd = act & (m >= sat)
+    num = dP - np.where(satd, r, 0.0).sum(axis=1) + np.where(linear, K * d, 0.0).sum(axis=1)
+    den = np.where(linear, K, 0.0).sum(axis=1) + D
+    with np.errstate(divide="ignore", invalid="ignore"):
+        x = np.where(den > 0, num / den, 0.5 * (lo + hi))
+    x = np.where(dP <= 0, 0.0, x)
+    return np.where(no_point & (dP > 0), np.inf, x)
+
+
+@dataclass(frozen=True)
+class BatchPoints:
+    deviation_hz: np.ndarray  # (M,) signed: negative for under-frequency
+    flow_after_mw: np.ndarray  # (M, L)
+    injection_mw: np.ndarray  # (M, A)
+    response_mw: np.ndarray  # (M, N) signed like the power each unit adds
+
+
+def settle_instances(dP, sigma, t, area_e, trip, gain, r_up, r_dn, d_hz, unit_area, D_a,
+                     F0, from_idx, to_idx, reactance) -> BatchPoints:
+    """Settled points of M event instances: instance m happens in period t[m] with per-period
+    gains and headroom (T, N), per-period load self-regulation D_a (T, A), pre-event flows
+    F0 (T, L) and reactances (T, L); trip[m] is the tripped unit or -1."""
+    M = len(dP)
+    K = np.asarray(gain, float)[t].copy()
+    tr = np.nonzero(trip >= 0)[0]
+    K[tr, trip[tr]] = 0.0
+    r = np.where((sigma > 0)[:, None], np.asarray(r_up, float)[t], np.asarray(r_dn, float)[t])
+    Dm = np.asarray(D_a, float)[t]
+    x = settle_batch(dP, K, d_hz, r, Dm.sum(axis=1))
+    xf = np.where(np.isfinite(x), x, 0.0)
+    resp = np.minimum(K * np.maximum(xf[:, None] - d_hz[None, :], 0.0), r)
+    resp = np.where(np.isfinite(x)[:, None], resp, np.where(K > 0, r, 0.0))
+    n_a = Dm.shape[1]
+    onehot = np.zeros((len(unit_area), n_a))
+    onehot[np.arange(len(unit_area)), unit_area] = 1.0
+    inj = resp @ onehot + Dm * xf[:, None]
+    inj[np.arange(M), area_e] -= dP
+    inj *= sigma[:, None]
+    X = np.asarray(reactance, float)
+    n_l = X.shape[1] if X.ndim == 2 else 0
+    flows = np.asarray(F0, float)[t].reshape(M, n_l).copy()
+    if n_l and M:
+        Xm = X[t]
+        keys, inv = np.unique(Xm, axis=0, return_inverse=True)
+        inv = inv.reshape(-1)
+        for k in range(len(keys)):
+            sel = inv == k
+            flows[sel] += _dc_flows_many(n_a, from_idx, to_idx, keys[k], inj[sel])
+    return BatchPoints(-sigma * x, flows, inj, sigma[:, None] * resp)
+
+
+def _dc_flows_many(n_areas, from_idx, to_idx, reactance, injections) -> np.ndarray:
+    """dc_flows for many injection vectors (rows) sharing one network."""
+    f = np.asarray(from_idx, int)
+    t = np.asarray(to_idx, int)
+    b = 1.0 / np.asarray(reactance, float)
+    B = np.zeros((n_areas, n_areas))
+    np.add.at(B, (f, f), b)
+    np.add.at(B, (t, t), b)
+    np.add.at(B, (f, t), -b)
+    np.add.at(B, (t, f), -b)
+    theta = np.zeros((n_areas, injections.shape[0]))
+    if n_areas > 1:
+        theta[1:] = np.linalg.solve(B[1:, 1:], injections[:, 1:].T)
+    return (b[:, None] * (theta[f] - theta[t])).T

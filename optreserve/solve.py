@@ -14,7 +14,7 @@ from .errors import InfeasibleError, SolverError, VerificationError
 from .model import Horizon, ModelInfo, build_model, effective_factor, prepare
 from .program import LinearProgram
 from .results import Result
-from .settle import settle_case
+from .settle import BatchPoints, settle_instances
 
 # An independent recalculation may differ from the optimiser's own figures by this much
 # before it counts as an error.
@@ -49,7 +49,8 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         t0 = time.perf_counter()
         lp, info = build_model(case, x_hat=x_hat, relax=relax, hz=hz)
         t_build += time.perf_counter() - t0
-        out = solve_program(lp, engine=engine, **opts)
+        out = solve_program(lp, engine=engine, want_duals=not lp.is_mip, **opts)
+        t_build += out.emit_time_s
         t_solve += out.solve_time_s
         if out.status == "infeasible":
             if iterations == 1:
@@ -72,7 +73,9 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
 
     result = _make_result(case, lp, info, out, relax)
     result.iterations = iterations
-    _attach_prices(result, lp, info, out)
+    t_price = _attach_prices(result, lp, info, out)
+    t_build += t_price[0]
+    t_solve += t_price[1]
     result.timings_s.update(read=case.read_time_s, build=t_build, solve=t_solve, write=0.0,
                             total=time.perf_counter() - t_start + case.read_time_s)
     return result
@@ -96,14 +99,21 @@ def period_values(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
     return gain, np.where(r_up > 1e-9, r_up, 0.0), np.where(r_dn > 1e-9, r_dn, 0.0)
 
 
-def exact_points(info: ModelInfo, lp: LinearProgram, x: np.ndarray):
-    """Independent settled points of every period's events: list (per period) of lists."""
+def exact_points(info: ModelInfo, lp: LinearProgram, x: np.ndarray) -> BatchPoints:
+    """Independent settled points of every event instance (scalar balance + DC flows)."""
     gain, r_up, r_dn = period_values(lp, info, x)
-    return [settle_case(s, gain[t], r_up[t], r_dn[t]) for t, s in enumerate(info.hz.snaps)]
+    hz = info.hz
+    case = info.case
+    apos = {a: k for k, a in enumerate(case.areas["area"])}
+    return settle_instances(
+        hz.dP, hz.sigma, hz.inst_t, hz.inst_area, hz.trip, gain, r_up, r_dn, hz.d_hz, hz.area,
+        hz.D_a, hz.F0, [apos[a] for a in case.links["from_area"]],
+        [apos[a] for a in case.links["to_area"]],
+        case.link_matrix("reactance_pu").astype(float))
 
 
 def _exact_deviation(info, lp, x) -> np.ndarray:
-    return np.array([p.deviation_hz for pts in exact_points(info, lp, x) for p in pts])
+    return exact_points(info, lp, x).deviation_hz
 
 
 def model_prediction(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
@@ -136,10 +146,9 @@ def model_prediction(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
 def _make_result(case: Case, lp: LinearProgram, info: ModelInfo, out: Outcome,
                  relax: bool) -> Result:
     points = exact_points(info, lp, out.x)
-    flat = [p for pts in points for p in pts]
     dev_model, flow_model = model_prediction(lp, info, out.x)
-    dev_exact = np.array([abs(p.deviation_hz) for p in flat])
-    flows_exact = np.array([p.flow_after_mw for p in flat]).reshape(len(flat), -1)
+    dev_exact = np.abs(points.deviation_hz)
+    flows_exact = points.flow_after_mw
     dis_f = float(np.max(np.abs(dev_exact - dev_model), initial=0.0))
     dis_p = float(np.max(np.abs(flows_exact - flow_model), initial=0.0))
     if not np.all(np.isfinite(dev_exact)) or dis_f > AGREE_HZ or dis_p > AGREE_MW:
@@ -149,7 +158,7 @@ def _make_result(case: Case, lp: LinearProgram, info: ModelInfo, out: Outcome,
             f" {AGREE_MW} MW)")
     F = case.limits.max_settled_deviation_hz
     viol_f = dev_exact - F
-    lim = info.hz.Fmax[info.hz.inst_t] if len(case.links) else np.zeros((len(flat), 0))
+    lim = info.hz.Fmax[info.hz.inst_t]
     viol_p = np.abs(flows_exact) - lim
     if (viol_f > 1e-5).any() or (viol_p > 1e-3 * np.maximum(1.0, lim / 100)).any():
         raise VerificationError(
@@ -165,17 +174,19 @@ def _make_result(case: Case, lp: LinearProgram, info: ModelInfo, out: Outcome,
 def _attach_prices(result: Result, lp: LinearProgram, info: ModelInfo, out: Outcome) -> None:
     """Marginal cost of event size: dual of each settled-deviation row, read from the LP
     with every integer decision fixed at its optimum (usual market practice), per hour of
-    the event's period."""
-    fixed = _fixed_lp(lp, out.x)
-    o = solve_highs(fixed, want_duals=True)
+    the event's period. Returns the (emit, solve) seconds of the extra LP, if any."""
+    o = out
+    if lp.is_mip:
+        o = solve_highs(_fixed_lp(lp, out.x), want_duals=True)
     if o.row_dual is None:
-        return
+        return (o.emit_time_s, o.solve_time_s) if o is not out else (0.0, 0.0)
     rows = lp.row_blocks["settled"].slice
     hz = info.hz
     # the row reads  sum(...) >= |dP| - F D: one more MW of event raises the bound by one
     price = np.abs(o.row_dual[rows]) / hz.hours[hz.inst_t]
     price[hz.dP == 0] = 0.0
     result.set_event_prices(price)
+    return (o.emit_time_s, o.solve_time_s) if o is not out else (0.0, 0.0)
 
 
 def _fixed_lp(lp: LinearProgram, x: np.ndarray) -> LinearProgram:
@@ -207,23 +218,21 @@ def diagnose(case: Case, hz: Horizon | None = None) -> InfeasibleError:
     labels = [str(p) for p in case.periods] if case.is_horizon else [""]
     F = case.limits.max_settled_deviation_hz
     s_set = lp.value(out.x, "slack_settled")
+    link_ids = [str(x) for x in case.links["link"]]
     rows = []
-    m = 0
-    for t, pts in enumerate(points):
-        lk = hz.snaps[t].links
-        for p in pts:
-            if s_set[m] > 1e-6:
-                dev = abs(p.deviation_hz)
-                rows.append({"family": "event", "element": p.event, "event": p.event,
-                             "period": labels[t], "short_mw": float(s_set[m]),
-                             "excess_hz": float(dev - F) if np.isfinite(dev) else float("inf"),
-                             "over_mw": 0.0})
-            over = np.abs(p.flow_after_mw) - lk["limit_mw"].to_numpy(float)
-            for li in np.nonzero(over > 1e-3)[0]:
-                rows.append({"family": "link", "element": str(lk["link"].iloc[li]),
-                             "event": p.event, "period": labels[t], "short_mw": 0.0,
-                             "excess_hz": 0.0, "over_mw": float(over[li])})
-            m += 1
+    over_all = np.abs(points.flow_after_mw) - hz.Fmax[hz.inst_t]
+    for m in range(len(hz.dP)):
+        t = hz.inst_t[m]
+        if s_set[m] > 1e-6:
+            dev = abs(points.deviation_hz[m])
+            rows.append({"family": "event", "element": hz.inst_name[m], "event": hz.inst_name[m],
+                         "period": labels[t], "short_mw": float(s_set[m]),
+                         "excess_hz": float(dev - F) if np.isfinite(dev) else float("inf"),
+                         "over_mw": 0.0})
+        for li in np.nonzero(over_all[m] > 1e-3)[0]:
+            rows.append({"family": "link", "element": link_ids[li], "event": hz.inst_name[m],
+                         "period": labels[t], "short_mw": 0.0, "excess_hz": 0.0,
+                         "over_mw": float(over_all[m, li])})
     if "slack_own" in lp.var_blocks:
         ta, aa = np.nonzero(hz.own > 0)
         s_own = lp.value(out.x, "slack_own")

@@ -1,0 +1,214 @@
+"""Synthetic but plausible day-ahead cases, the same for the same seed (benchmarks, tests).
+
+Mixed technologies and sizes, a daily load shape, merit-order outputs per period, a meshed
+area graph, discrete droop steps 2-5 % by 0.5 %. Pre-event link flows come from a DC load
+flow of each period's area balance; link limits leave room for the largest events.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .settle import dc_flows
+
+# technology: share of units, capacity range MW, energy cost (merit order), headroom price,
+# droop band, dead band choices mHz, provides, inertia s, activation s
+TECH = {
+    "steam": (0.22, (150, 700), 40, (7, 14), (3.0, 6.0), (10, 15, 20), True, 6.0, 30),
+    "ccgt": (0.20, (200, 450), 55, (9, 14), (2.0, 6.0), (0, 10), True, 5.0, 20),
+    "hydro": (0.16, (40, 300), 10, (2, 5), (2.0, 8.0), (0, 5), True, 3.0, 15),
+    "peaker": (0.16, (30, 150), 90, (15, 25), (2.0, 5.0), (0, 10), True, 2.0, 10),
+    "battery": (0.10, (20, 200), 0, (1, 3), (2.0, 5.0), (0,), True, 0.0, 1),
+    "nuclear": (0.04, (800, 1200), 5, (0, 0), (4.0, 5.0), (20,), False, 6.0, 30),
+    "wind": (0.12, (50, 300), 1, (0, 0), (4.0, 5.0), (0,), False, 0.0, 1),
+}
+STEPS = [2.0, 2.5, 3.0, 3.5, 4.0, 4.5, 5.0]
+
+
+@dataclass(frozen=True)
+class Spec:
+    units: int = 300
+    areas: int = 5
+    links: int = 8
+    periods: int = 96
+    events: int = 10
+    seed: int = 1
+
+
+def daily_shape(T: int) -> np.ndarray:
+    """Load in per unit of the daily peak: night trough, morning ramp, evening peak."""
+    h = (np.arange(T) + 0.5) * 24.0 / T
+    morning = np.exp(-0.5 * ((h - 9.0) / 2.5) ** 2)
+    evening = np.exp(-0.5 * ((h - 19.0) / 2.0) ** 2)
+    return 0.62 + 0.25 * morning + 0.38 * evening - 0.05 * np.cos(2 * np.pi * h / 24.0)
+
+
+def _area_graph(rng, A: int, L: int) -> list[tuple[int, int]]:
+    if L < A - 1:
+        raise ValueError(f"{L} links cannot connect {A} areas (need at least {A - 1})")
+    if L > A * (A - 1) // 2 * 2:
+        raise ValueError(f"{L} links is too many for {A} areas")
+    edges = []
+    order = rng.permutation(A)
+    for k in range(1, A):  # random spanning tree
+        edges.append((int(order[rng.integers(0, k)]), int(order[k])))
+    pairs = [(a, b) for a in range(A) for b in range(a + 1, A)]
+    while len(edges) < L:  # mesh it; parallel circuits only once every pair is used
+        a, b = pairs[rng.integers(0, len(pairs))]
+        if (a, b) in edges or (b, a) in edges:
+            if len({frozenset(e) for e in edges}) < len(pairs):
+                continue
+        edges.append((a, b))
+    return edges
+
+
+def generate(spec: Spec, out: str | Path) -> Path:
+    """Write a case folder for the spec; identical files for an identical spec."""
+    rng = np.random.default_rng(spec.seed)
+    N, A, T = spec.units, spec.areas, spec.periods
+    if min(N, A, T, spec.events) < 1:
+        raise ValueError("units, areas, periods and events must be at least 1")
+    names = list(TECH)
+    share = np.array([TECH[k][0] for k in names])
+    tech = rng.choice(len(names), size=N, p=share / share.sum())
+    tech[: min(N, 3)] = [names.index("steam"), names.index("ccgt"), names.index("hydro")][
+        : min(N, 3)]
+    area = rng.integers(0, A, size=N)
+    area[: min(N, A)] = np.arange(min(N, A))  # every area has a unit
+    cap = np.array([rng.uniform(*TECH[names[k]][1]) for k in tech]).round(0)
+    kind = [names[k] for k in tech]
+    # no single unit above 4 % of the fleet: the largest trip stays a credible, coverable event
+    cap = np.minimum(cap, (max(50.0, 0.04 * cap.sum()) * rng.uniform(0.8, 1.0, N)).round(0))
+    is_batt = np.array([k == "battery" for k in kind])
+    is_wind = np.array([k == "wind" for k in kind])
+    energy = np.array([TECH[k][2] for k in kind]) * rng.uniform(0.9, 1.1, N)
+    price_up = np.array([rng.uniform(*TECH[k][3]) for k in kind]).round(2)
+    price_dn = (price_up * rng.uniform(0.2, 0.4, N)).round(2)
+    band = np.array([TECH[k][4] for k in kind])
+    dead = np.array([rng.choice(TECH[k][5]) for k in kind], dtype=float)
+    provides = np.array([TECH[k][6] for k in kind])
+    inertia = np.array([TECH[k][7] for k in kind]) * rng.uniform(0.8, 1.2, N)
+    act = np.array([TECH[k][8] for k in kind], dtype=float)
+    min_out = np.where(is_batt, -cap, np.where(is_wind, 0.0, (0.3 * cap).round(0)))
+    min_out = np.where(np.array([k == "hydro" for k in kind]), (0.1 * cap).round(0), min_out)
+
+    # loads: each area a share of the system; peak at 78 % of dispatchable capacity
+    firm = cap[~is_batt].sum()
+    area_share = rng.dirichlet(np.full(A, 4.0))
+    shape = daily_shape(T)
+    sys_load = 0.78 * firm * shape / shape.max()
+    wind_cf = np.clip(0.35 + 0.15 * np.sin(2 * np.pi * (np.arange(T) / T + rng.uniform())) +
+                      rng.normal(0, 0.03, T), 0.05, 0.9)
+    load = sys_load[:, None] * area_share[None, :]  # (T, A)
+
+    # merit-order dispatch each period: units start in cost order, each at 80 % of capacity
+    # (headroom both ways), until the load is covered; the last one takes the remainder
+    output = np.zeros((T, N))
+    online = np.zeros((T, N), dtype=bool)
+    order = [i for i in np.argsort(energy, kind="stable") if not (is_batt[i] or is_wind[i])]
+    for t in range(T):
+        out_t = np.zeros(N)
+        on = np.zeros(N, dtype=bool)
+        out_t[is_wind] = (cap[is_wind] * wind_cf[t]).round(1)
+        on[is_wind | is_batt] = True
+        need = sys_load[t] - out_t[is_wind].sum()
+        for i in order:
+            if need <= 0:
+                break
+            on[i] = True
+            out_t[i] = max(min_out[i], min(0.8 * cap[i], need))
+            need -= out_t[i]
+        output[t] = out_t.round(1)
+        online[t] = on
+    # offline units carry no reserve and sit at zero output (min output applies when running)
+    edges = _area_graph(rng, A, spec.links)
+    x = rng.uniform(0.01, 0.05, len(edges)).round(4)
+    f_idx = [a for a, _ in edges]
+    t_idx = [b for _, b in edges]
+    gen_area = np.array([np.bincount(area, weights=output[t], minlength=A) for t in range(T)])
+    net = gen_area - load
+    net -= net.mean(axis=1, keepdims=True)  # balance: losses/exports spread over the areas
+    flows = np.array([dc_flows(A, f_idx, t_idx, x, net[t]) for t in range(T)])
+
+    ids = [f"U{k + 1:04d}_{kind[k]}" for k in range(N)]
+    aid = [f"Z{k + 1:02d}" for k in range(A)]
+    lid = [f"L{k + 1:02d}_{aid[a]}_{aid[b]}" for k, (a, b) in enumerate(edges)]
+    # events: the largest providers and non-providers trip, one load rise, one load drop
+    n_ev = spec.events
+    n_trip = max(1, n_ev - 2) if n_ev >= 3 else n_ev
+    firm_big = np.argsort(-np.where(is_batt | is_wind, 0, cap), kind="stable")[:n_trip]
+    ev_rows = [{"event": f"trip_{ids[i]}", "kind": "unit_trip", "unit": ids[i], "area": "",
+                "size_mw": ""} for i in firm_big]
+    largest = float(np.max(output[:, firm_big])) if n_trip else 500.0
+    if n_ev - n_trip >= 1:
+        a = int(np.argmax(area_share))
+        ev_rows.append({"event": f"load_rise_{aid[a]}", "kind": "load_step", "unit": "",
+                        "area": aid[a], "size_mw": round(0.6 * largest, 0)})
+    if n_ev - n_trip >= 2:
+        a = int(np.argmin(area_share))
+        ev_rows.append({"event": f"load_drop_{aid[a]}", "kind": "load_step", "unit": "",
+                        "area": aid[a], "size_mw": -round(0.5 * largest, 0)})
+
+    # unit table: static columns carry the first period; time series override per period
+    now = np.where(provides, np.where(rng.uniform(size=N) < 0.5, 4.0, 5.0), 5.0)
+    units = pd.DataFrame({
+        "unit": ids, "area": [aid[a] for a in area], "capacity_mw": cap,
+        "output_mw": output[0], "min_output_mw": np.where(online[0], min_out, np.minimum(
+            min_out, 0.0)),
+        "droop_min_pct": band[:, 0], "droop_max_pct": band[:, 1], "droop_now_pct": now,
+        "deadband_mhz": dead, "price_up_per_mw_h": price_up, "price_down_per_mw_h": price_dn,
+        "provides": np.where(provides, "true", "false"), "inertia_s": inertia.round(2),
+        "activation_time_s": act,
+    })
+    # run-of-plant ramp caps for steam: what they can deliver in their activation time
+    cap_up = np.where(np.array([k == "steam" for k in kind]), (0.08 * cap).round(0), np.nan)
+    units.insert(9, "reserve_up_max_mw", cap_up)
+    areas = pd.DataFrame({"area": aid, "load_mw": load[0].round(1),
+                          "load_damping_pct_per_hz": rng.uniform(1.0, 2.0, A).round(2),
+                          "min_own_reserve_mw": np.zeros(A)})
+    event_size = max(largest, 0.6 * largest)
+    lim = (np.abs(flows).max(axis=0) + 0.5 * event_size).round(-1) + 50
+    links = pd.DataFrame({"link": lid, "from_area": [aid[a] for a in f_idx],
+                          "to_area": [aid[b] for b in t_idx], "reactance_pu": x,
+                          "limit_mw": lim, "flow_mw": flows[0].round(1)})
+
+    start = pd.Timestamp("2026-06-01T00:00")
+    step = pd.Timedelta(hours=24.0 / T)
+    labels = [(start + k * step).strftime("%Y-%m-%dT%H:%M") for k in range(T)]
+    ub = pd.DataFrame({
+        "period": np.repeat(labels, N), "unit": np.tile(ids, T),
+        "output_mw": output.reshape(-1),
+        "min_output_mw": np.where(online, min_out[None, :], np.minimum(min_out, 0.0)[None, :])
+        .reshape(-1),
+        "provides": np.where(online & provides[None, :], "true", "false").reshape(-1),
+        "price_up_per_mw_h": (price_up[None, :] * (0.85 + 0.3 * shape / shape.max())[:, None])
+        .round(2).reshape(-1),
+    })
+    ab = pd.DataFrame({"period": np.repeat(labels, A), "area": np.tile(aid, T),
+                       "load_mw": load.round(1).reshape(-1)})
+    lb = pd.DataFrame({"period": np.repeat(labels, len(lid)), "link": np.tile(lid, T),
+                       "flow_mw": flows.round(1).reshape(-1)})
+
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "case.toml").write_text(
+        f'name = "synthetic day: {N} units, {A} areas, {len(lid)} links, {T} periods, '
+        f'{n_ev} events, seed {spec.seed}"\n'
+        "nominal_frequency_hz = 50.0\n\n[limits]\nmax_settled_deviation_hz = 0.2\n"
+        "full_activation_deviation_hz = 0.2\n\n[droop]\n"
+        f"steps_pct = [{', '.join(f'{s:.1f}' for s in STEPS)}]\n\n"
+        "[solver]\nmip_gap = 1e-3\ntime_limit_s = 120\n")
+    kw = dict(index=False, lineterminator="\n")
+    units.to_csv(out / "units.csv", **kw)
+    areas.to_csv(out / "areas.csv", **kw)
+    links.to_csv(out / "links.csv", **kw)
+    pd.DataFrame(ev_rows, columns=["event", "kind", "unit", "area", "size_mw"]).to_csv(
+        out / "events.csv", **kw)
+    ub.to_csv(out / "units_by_period.csv", **kw)
+    ab.to_csv(out / "areas_by_period.csv", **kw)
+    lb.to_csv(out / "links_by_period.csv", **kw)
+    return out
