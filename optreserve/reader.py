@@ -131,8 +131,8 @@ class _Table:
     file: str
     header_line: int
     header: list[str]
-    rows: list[list[str]]
-    lines: list[int]  # physical line number of each data row
+    columns: list[np.ndarray]  # one object array of stripped strings per header column
+    lines: np.ndarray  # physical line number of each data row
 
 
 def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
@@ -153,11 +153,9 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
         line = text[: text.index("\x00")].count("\n") + 1
         col.error(label, "contains a NUL byte: not a text CSV file", row=line)
         return None
-    numbered = [
-        (k + 1, ln)
-        for k, ln in enumerate(text.splitlines())
-        if ln.strip() and not ln.lstrip().startswith("#")
-    ]
+    all_lines = text.splitlines()
+    numbered = [(k + 1, ln) for k, ln in enumerate(all_lines)
+                if ln.strip() and not ln.lstrip().startswith("#")]
     if not numbered:
         col.error(label, "is empty: a header row is required", row=1)
         return None
@@ -173,19 +171,37 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
         elif h in seen:
             col.error(label, f"column '{h}' appears twice in the header", header_line, h)
         seen.add(h)
+    body = numbered[1:]
+    width = len(header)
+    texts = [ln for _, ln in body]
+    if '"' not in text and all(ln.count(",") == width - 1 for ln in texts):
+        # plain file (no quoting, no ragged rows): split directly, one array per column
+        grid = np.array([ln.split(",") for ln in texts], dtype=object).reshape(len(texts), width)
+        padded = any(p in text for p in (" ,", ", ", "\t", " \n", "\n ", " \r")) or \
+            text.startswith(" ") or text.endswith(" ")
+        columns = [_strip(grid[:, k]) if padded else grid[:, k] for k in range(width)]
+        lines = np.array([n for n, _ in body], dtype=np.int64)
+        return _Table(label, header_line, header, columns, lines)
     rows, lines = [], []
-    parsed = csv.reader([ln for _, ln in numbered[1:]])
-    for (line_no, _), cells in zip(numbered[1:], parsed):
+    for (line_no, _), cells in zip(body, csv.reader(texts)):
         cells = [c.strip() for c in cells]
-        if len(cells) != len(header):
-            if len(cells) > len(header) and all(c == "" for c in cells[len(header):]):
-                cells = cells[: len(header)]
+        if len(cells) != width:
+            if len(cells) > width and all(c == "" for c in cells[width:]):
+                cells = cells[:width]
             else:
-                col.error(label, f"has {len(cells)} fields, header has {len(header)}", line_no)
+                col.error(label, f"has {len(cells)} fields, header has {width}", line_no)
                 continue
         rows.append(cells)
         lines.append(line_no)
-    return _Table(label, header_line, header, rows, lines)
+    grid = np.array(rows, dtype=object).reshape(len(rows), width)
+    return _Table(label, header_line, header, [grid[:, k] for k in range(width)],
+                  np.array(lines, dtype=np.int64))
+
+
+def _strip(a: np.ndarray) -> np.ndarray:
+    if any(x != x.strip() for x in a):
+        return np.array([x.strip() for x in a], dtype=object)
+    return a
 
 
 def _parse_float(s: str) -> float | None:
@@ -219,12 +235,12 @@ def _typed_table(t: _Table, cols: list[Col], col: _Collector,
         return None
     pos = {h: k for k, h in enumerate(t.header)}
     lines = np.asarray(t.lines, dtype=np.int64)
-    n = len(t.rows)
+    n = len(lines)
     df = pd.DataFrame(index=range(n))
     for c in cols:  # column by column, vectorised; a loop only over the bad cells
         if c.name in pos:
             k = pos[c.name]
-            raw = np.array([r[k] for r in t.rows], dtype=object) if n else np.zeros(0, object)
+            raw = t.columns[k]
         else:
             raw = np.full(n, "", dtype=object)
         empty = raw == ""
@@ -265,9 +281,9 @@ def _typed_table(t: _Table, cols: list[Col], col: _Collector,
                         col.error(t.file, f"{msg} (got {raw[r]})", int(lines[r]), c.name)
             df[c.name] = vals.astype(float)
         elif c.kind == "bool":
-            low = np.array([x.lower() for x in raw], dtype=object)
-            is_t = np.isin(low, list(TRUE_WORDS))
-            is_f = np.isin(low, list(FALSE_WORDS))
+            low = pd.Series([x.lower() for x in raw], dtype=object)
+            is_t = low.isin(TRUE_WORDS).to_numpy()
+            is_f = low.isin(FALSE_WORDS).to_numpy()
             bad = ~empty & ~is_t & ~is_f
             for r in np.nonzero(bad)[0]:
                 col.error(t.file, f"expected true or false, got '{raw[r][:40]}'",
@@ -575,21 +591,29 @@ def _check_series(folder, series_raw, units, areas, links, events, settings, col
     for key, df in series_raw.items():
         idc = SERIES[key][0]
         file = str(folder / f"{key}_by_period.csv")
-        seen: dict[tuple, int] = {}
-        for per, i, line in zip(df["period"], df[idc], df["_line"]):
+        per_arr = df["period"].to_numpy(object)
+        id_arr = df[idc].to_numpy(object)
+        line_arr = df["_line"].to_numpy()
+        for per in dict.fromkeys(per_arr):
             k = _period_key(per)
             if k is None:
+                first = int(line_arr[np.nonzero(per_arr == per)[0][0]])
                 col.error(file, f"period '{per[:40]}' is neither an integer nor an ISO-8601 "
-                          "timestamp", int(line), "period")
+                          "timestamp", first, "period")
                 bad = True
-                continue
-            keys[per] = k
-            if i not in ids[key]:
-                col.error(file, f"unknown {idc} '{i}' (not in {key}.csv)", int(line), idc)
-            if (per, i) in seen:
-                col.error(file, f"duplicate row for period '{per}' and {idc} '{i}' (first at "
-                          f"row {seen[(per, i)]})", int(line), idc)
-            seen[(per, i)] = int(line)
+            else:
+                keys[per] = k
+        for r in np.nonzero(~pd.Series(id_arr).isin(ids[key]).to_numpy())[0][:MAX_PROBLEMS]:
+            col.error(file, f"unknown {idc} '{id_arr[r]}' (not in {key}.csv)", int(line_arr[r]),
+                      idc)
+        pair = pd.Series(per_arr.astype(str)) + "\x00" + pd.Series(id_arr.astype(str))
+        dup = pair.duplicated(keep="first").to_numpy()
+        if dup.any():
+            first_line = dict(zip(pair[~dup], line_arr[~dup]))
+            for r in np.nonzero(dup)[0][:MAX_PROBLEMS]:
+                col.error(file, f"duplicate row for period '{per_arr[r]}' and {idc} "
+                          f"'{id_arr[r]}' (first at row {first_line[pair[r]]})",
+                          int(line_arr[r]), idc)
         sets[key] = set(df["period"])
     ev_file = str(folder / "events.csv")
     ev_periods = [(p, int(ln)) for p, ln in zip(events["period"], events["_line"]) if p]

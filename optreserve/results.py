@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import csv
 import json
+import re
 import os
 import shutil
 import tempfile
@@ -175,15 +177,16 @@ class Result:
     def schedule_wide(self) -> pd.DataFrame:
         """Units x periods headroom (rows: unit and direction) for spreadsheet users."""
         a = self.allocation
-        if "period" not in a.columns:
-            a = a.assign(period="snapshot")
+        units = self.case.units["unit"].to_numpy(object)
+        N = len(units)
+        labels = [str(p) for p in self.case.periods] if self.case.is_horizon else ["snapshot"]
         parts = []
         for direction, col in (("up", "headroom_up_mw"), ("down", "headroom_down_mw")):
-            w = a.pivot(index="unit", columns="period", values=col)
-            w = w.reindex(index=list(dict.fromkeys(a["unit"])),
-                          columns=list(dict.fromkeys(a["period"])))
+            m = a[col].to_numpy(float).reshape(len(labels), N).T  # rows are period-major
+            w = pd.DataFrame(m, columns=labels)
             w.insert(0, "direction", direction)
-            parts.append(w.reset_index())
+            w.insert(0, "unit", units)
+            parts.append(w)
         return pd.concat(parts, ignore_index=True)
 
     # ------------------------------------------------------------------ writing
@@ -223,15 +226,36 @@ def _num(v):
 
 
 def write_table(df: pd.DataFrame, path: Path) -> None:
-    """Stable CSV: fixed column order, 6 decimals, no negative zero, true/false booleans."""
-    df = df.copy()
+    """Stable CSV: fixed column order, 6 decimals, no negative zero, true/false booleans,
+    empty cells for missing values. Formatted column by column (pandas' float formatting is
+    the slow part of writing a day of results)."""
+    cols = []
     for c in df.columns:
-        if df[c].dtype == bool:
-            df[c] = np.where(df[c], "true", "false")
-        elif pd.api.types.is_float_dtype(df[c]):
-            v = np.round(df[c].to_numpy(float), 6) + 0.0
-            df[c] = v
-    df.to_csv(path, index=False, float_format="%.6f", lineterminator="\n")
+        v = df[c].to_numpy()
+        if v.dtype == bool:
+            cols.append(np.where(v, "true", "false").tolist())
+        elif np.issubdtype(v.dtype, np.floating):
+            r = np.round(v.astype(float), 6) + 0.0
+            if np.isnan(r).any():
+                cols.append(["" if x != x else f"{x:.6f}" for x in r.tolist()])
+            else:  # one formatting call for the whole column
+                cols.append((("%.6f\n" * len(r)) % tuple(r.tolist())).split("\n")[:-1])
+        else:
+            cols.append(["" if x is None or (isinstance(x, float) and x != x) else str(x)
+                         for x in v.tolist()])
+    header = [str(c) for c in df.columns]
+    special = re.compile(r'[,"\r\n]')
+    plain = not any(special.search(x) for c in [header] + [
+        col for col, k in zip(cols, df.columns) if df[k].dtype == object] for x in c)
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        if plain:  # nothing to quote: join directly (several times faster than csv.writer)
+            fh.write(",".join(header) + "\n")
+            if cols and cols[0]:
+                fh.write("\n".join(map(",".join, zip(*cols))) + "\n")
+        else:
+            w = csv.writer(fh, lineterminator="\n")
+            w.writerow(header)
+            w.writerows(zip(*cols))
 
 
 def _move_into(tmp: Path, out: Path) -> None:
