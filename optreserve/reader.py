@@ -13,6 +13,7 @@ import math
 import re
 import time
 import tomllib
+from datetime import datetime
 from collections import deque
 from dataclasses import dataclass
 from pathlib import Path
@@ -123,6 +124,7 @@ EVENT_COLS = [
 ]
 EVENT_KINDS = ("unit_trip", "load_step")
 
+_PLAIN_NUMS = re.compile(r"[0-9eE+\-.]*")
 _NUM_RE = re.compile(r"^[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?$")
 
 
@@ -259,7 +261,9 @@ def _typed_table(t: _Table, cols: list[Col], col: _Collector,
             df[c.name] = pd.Series(vals, dtype=object)
         elif c.kind == "float":
             num = np.full(n, np.nan)
-            try:  # fast path: every non-empty cell is a plain number
+            try:  # fast path: every non-empty cell is a plain decimal number
+                if not _PLAIN_NUMS.fullmatch("".join(raw[~empty])):
+                    raise ValueError
                 num[~empty] = raw[~empty].astype(float)
                 ok_fmt = np.ones(n, dtype=bool)
             except ValueError:
@@ -572,12 +576,12 @@ def _period_key(label: str):
     """Integers sort as numbers, anything else must be an ISO-8601 timestamp."""
     if re.fullmatch(r"[+-]?\d+", label):
         return ("int", int(label))
-    try:
-        ts = pd.Timestamp(label)
+    try:  # ISO-8601 only (what datetime.fromisoformat reads), not any date-like text
+        ts = pd.Timestamp(datetime.fromisoformat(label))
     except (ValueError, TypeError):
         return None
-    if ts is pd.NaT:
-        return None
+    if ts.tzinfo is not None:
+        ts = ts.tz_convert("UTC").tz_localize(None)
     return ("time", ts)
 
 

@@ -97,8 +97,9 @@ class Result:
         events["size_mw"] = hz.sigma * hz.dP
         events["settled_frequency_hz"] = case.nominal_frequency_hz + dev
         events["settled_deviation_hz"] = dev
-        events["limit_hz"] = np.full(M, F)
-        events["binding"] = (F - np.abs(dev)) <= BINDING_HZ
+        # the bound the allocation is held to (full_activation_deviation_hz when that is tighter)
+        events["limit_hz"] = np.full(M, info.F_model)
+        events["binding"] = (info.F_model - np.abs(dev)) <= BINDING_HZ
         events["marginal_cost_per_mw_h"] = np.full(M, np.nan)
         L = hz.F0.shape[1]
         links = pd.DataFrame({
@@ -116,7 +117,7 @@ class Result:
         if "changed" in lp.var_blocks:
             pen = float(case.droop.change_penalty_per_unit
                         * np.round(lp.value(out.x, "changed")).sum())
-        total = float((cost * hz.hours[:, None]).sum() + pen)
+        total = float((cost * hz.hours[:, None]).sum())  # the contract's objective: headroom
         status = out.status if not relax else f"{out.status}_relaxed"
         res = cls(case=case, status=status,
                   objective_per_h=None if horizon else total,
@@ -148,6 +149,9 @@ class Result:
             "periods": self.case.n_periods,
             "horizon_hours": _num(float(self.case.hours().sum())),
             "change_penalty": _num(self.change_penalty_total),
+            "objective_with_penalty": _num((self.objective_total if self.objective_total
+                                            is not None else self.objective_per_h)
+                                           + self.change_penalty_total),
             "mip_gap": _num(self.mip_gap),
             "solver": dict(self.solver),
             "solver_name": self.solver.get("name"),

@@ -14,6 +14,10 @@ import numpy as np
 from .case import Case
 
 
+# Relative round-off below which a response that just covers the event still settles.
+SATURATION_TOL = 1e-9
+
+
 def settle_deviation(dP: float, gain, deadband_hz, headroom, damping_mw_per_hz: float) -> float:
     """Solve sum_i min(K_i (x - d_i)^+, r_i) + D x = dP for x >= 0 (dP >= 0, MW).
 
@@ -41,6 +45,8 @@ def settle_deviation(dP: float, gain, deadband_hz, headroom, damping_mw_per_hz: 
     if k >= len(pts):
         slope = D  # beyond the last breakpoint only load self-regulation grows
         if slope <= 0:
+            if dP - vals[-1] <= SATURATION_TOL * max(1.0, dP):
+                return float(pts[-1])  # covered to within round-off: settles at saturation
             return float("inf")
         return float(pts[-1] + (dP - vals[-1]) / slope)
     if k == 0:
@@ -134,7 +140,8 @@ def settle_batch(dP, gain, deadband_hz, headroom, damping_mw_per_hz) -> np.ndarr
     def total(x):
         return np.minimum(K * np.maximum(x[:, None] - d, 0.0), r).sum(axis=1) + D * x
 
-    no_point = (D <= 0) & (r.sum(axis=1) < dP)
+    # a response that covers dP only to within round-off still settles (at full headroom)
+    no_point = (D <= 0) & (r.sum(axis=1) < dP - SATURATION_TOL * np.maximum(1.0, dP))
     lo = np.zeros_like(dP)
     for _ in range(BISECTION_STEPS):
         mid = 0.5 * (lo + hi)

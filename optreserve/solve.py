@@ -63,6 +63,9 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
                               f"{out.message})")
         history.append((lp, info, out))
         if not _needs_fixed_point(info):
+            # no row depends on the settled guess: the exact deviation is the model's own
+            info.x_hat = np.where(hz.dP > 0, np.abs(_exact_deviation(info, lp, out.x)),
+                                  info.x_hat)
             break
         exact = np.abs(_exact_deviation(info, lp, out.x))
         live = hz.dP > 0
@@ -116,21 +119,32 @@ def _exact_deviation(info, lp, x) -> np.ndarray:
     return exact_points(info, lp, x).deviation_hz
 
 
-def model_prediction(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
-    """The optimiser's own view of each event instance: settled |df| = dP / beta' and link
-    flows from the multiply-by-beta' form, at the gains it chose."""
+def model_beta(lp: LinearProgram, info: ModelInfo, x: np.ndarray) -> np.ndarray:
+    """beta'_ma (MW/Hz) per event instance and area as the model sees it: dead-band-reduced
+    gains at the guess x_hat, tripped unit out, plus load self-regulation."""
     hz = info.hz
-    N = hz.N
     n_a, n_k = len(info.case.areas), len(info.classes)
     K = lp.value(x, "K")
     G = lp.value(x, "G").reshape(-1, n_a, n_k)
     t = hz.inst_t
     c = effective_factor(info.classes, info.x_hat)  # (M, K)
     beta = (G[info.group_of_t[t]] * c[:, None, :]).sum(axis=2) + hz.D_a[t]  # (M, A)
-    for m, j in enumerate(hz.trip):
-        if j >= 0 and hz.avail[t[m], j]:
-            cj = effective_factor(hz.d_hz[[j]], info.x_hat[[m]])[0, 0]
-            beta[m, hz.inst_area[m]] -= cj * K[hz.block[t[m]] * N + j]
+    m = np.nonzero(hz.trip >= 0)[0]
+    j = hz.trip[m]
+    m, j = m[hz.avail[t[m], j]], j[hz.avail[t[m], j]]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cj = np.clip(1.0 - hz.d_hz[j] / np.where(info.x_hat[m] > 0, info.x_hat[m], np.inf),
+                     0.0, 1.0)
+    np.subtract.at(beta, (m, hz.inst_area[m]), cj * K[hz.block[t[m]] * hz.N + j])
+    return beta
+
+
+def model_prediction(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
+    """The optimiser's own view of each event instance: settled |df| = dP / beta' and link
+    flows from the multiply-by-beta' form, at the gains it chose."""
+    hz = info.hz
+    beta = model_beta(lp, info, x)
+    t = hz.inst_t
     B = beta.sum(axis=1)
     with np.errstate(divide="ignore", invalid="ignore"):
         dev = np.where(hz.dP > 0, hz.dP / B, 0.0)
@@ -171,22 +185,41 @@ def _make_result(case: Case, lp: LinearProgram, info: ModelInfo, out: Outcome,
                          "max_flow_disagreement_mw": dis_p})
 
 
-def _attach_prices(result: Result, lp: LinearProgram, info: ModelInfo, out: Outcome) -> None:
-    """Marginal cost of event size: dual of each settled-deviation row, read from the LP
-    with every integer decision fixed at its optimum (usual market practice), per hour of
-    the event's period. Returns the (emit, solve) seconds of the extra LP, if any."""
+def _attach_prices(result: Result, lp: LinearProgram, info: ModelInfo, out: Outcome):
+    """Marginal cost of event size per MW and hour of the event's period, from the duals of
+    the LP with every integer decision fixed at its optimum (usual market practice).
+
+    Envelope theorem: the event size dP enters the settled row's bound (d/d dP = 1) and the
+    coefficients of its flow rows (multiplied-by-beta' form), so
+      d cost / d dP = y_settled + sum_flow-rows y_r * (d bound_r/d dP - d row_r/d dP . x).
+    With no flow row binding this is the settled row's dual alone.
+    Returns the (emit, solve) seconds of the extra LP, if any."""
     o = out
     if lp.is_mip:
         o = solve_highs(_fixed_lp(lp, out.x), want_duals=True)
+    extra = (o.emit_time_s, o.solve_time_s) if o is not out else (0.0, 0.0)
     if o.row_dual is None:
-        return (o.emit_time_s, o.solve_time_s) if o is not out else (0.0, 0.0)
-    rows = lp.row_blocks["settled"].slice
+        return extra
     hz = info.hz
-    # the row reads  sum(...) >= |dP| - F D: one more MW of event raises the bound by one
-    price = np.abs(o.row_dual[rows]) / hz.hours[hz.inst_t]
+    y = o.row_dual
+    price = y[lp.row_blocks["settled"].slice].copy()
+    if "flow_hi" in lp.row_blocks:
+        live = np.nonzero(hz.dP > 0)[0]
+        t = hz.inst_t[live]
+        Phi = hz.Phi[t]
+        Phi_e = np.take_along_axis(Phi, hz.inst_area[live][:, None, None], axis=2)
+        V = hz.sigma[live][:, None, None] * (Phi - Phi_e) / hz.Fmax[t][:, :, None]  # dW/d dP
+        beta = model_beta(lp, info, o.x)[live]  # includes D_a, which sits in the bound
+        # row_r(x) - bound_r = sum_a W_la beta'_a: its derivative is sum_a V_la beta'_a
+        g = np.einsum("mla,ma->ml", V, beta)
+        n_l = hz.F0.shape[1]
+        for name in ("flow_hi", "flow_lo"):
+            yr = y[lp.row_blocks[name].slice].reshape(len(live), n_l)
+            price[live] -= (yr * g).sum(axis=1)
+    price = price / hz.hours[hz.inst_t]
     price[hz.dP == 0] = 0.0
-    result.set_event_prices(price)
-    return (o.emit_time_s, o.solve_time_s) if o is not out else (0.0, 0.0)
+    result.set_event_prices(np.where(np.abs(price) < 1e-9, 0.0, price))
+    return extra
 
 
 def _fixed_lp(lp: LinearProgram, x: np.ndarray) -> LinearProgram:

@@ -7,7 +7,6 @@ dicts; the CSV header is the union of their keys in first-seen order, missing ce
 
 from __future__ import annotations
 
-import csv
 import sys
 from pathlib import Path
 
@@ -15,7 +14,7 @@ import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))  # so tests can import refcalc
 
-import optreserve  # noqa: E402
+import optreserve
 
 
 def _toml_value(v) -> str:

@@ -202,7 +202,8 @@ def test_warnings_for_unknown_column_odd_droop_and_wide_dead_band(good):
 # ------------------------------------------------------------------ command line
 def run_cli(*args, cwd=None):
     return subprocess.run([sys.executable, "-m", "optreserve", *map(str, args)],
-                          capture_output=True, text=True, cwd=cwd, timeout=120)
+                          check=False, capture_output=True, text=True, cwd=cwd,
+                          timeout=120)
 
 
 def test_cli_input_error_exit_2_one_line_per_error_nothing_written(good, tmp_path):
@@ -234,7 +235,8 @@ def test_cli_infeasible_exit_3_names_short_event(tmp_path, capsys):
     """Exit code 3 when no allocation can meet the limits, with a diagnosis naming the short
     event. Hand arithmetic: the only other unit can give at most 300/(0.03*50) = 200 MW/Hz,
     40 MW at 0.2 Hz, far below the 300 MW trip."""
-    units = [unit("Cragg_Big", "Cragg", 400, 300, 3, 6), unit("Cragg_Small", "Cragg", 300, 200, 3, 6)]
+    units = [unit("Cragg_Big", "Cragg", 400, 300, 3, 6),
+             unit("Cragg_Small", "Cragg", 300, 200, 3, 6)]
     case = write_case(tmp_path / "c", settings(), units, [{"area": "Cragg", "load_mw": 500}],
                       [{"event": "trip_big", "kind": "unit_trip", "unit": "Cragg_Big"}])
     assert main(["solve", str(case), "--quiet"]) == 3

@@ -492,8 +492,8 @@ def test_change_penalty_keeps_todays_droop_when_cheaper(case_dir, steps, penalty
     1000/(0.04*50) = 500 MW/Hz), price 2; 1000 MW load at 1 %/Hz (10 MW/Hz); 80 MW step;
     F = F_act = 0.2. Least gain (80 - 2)/0.2 = 390 MW/Hz: continuous droop costs 2*78 = 156
     (steps: next step 5 % = 400 MW/Hz, 2*80 = 160). Keeping 4 % costs 2*100 = 200. A change
-    penalty of 100 keeps 4 % (objective 200); a penalty of 10 changes (156 + 10 = 166, steps
-    160 + 10 = 170)."""
+    penalty of 100 keeps 4 % (headroom cost 200, no penalty); a penalty of 10 changes
+    (headroom cost 156, steps 160, plus one penalty of 10)."""
     extra = {"droop": {"change_penalty_per_unit": penalty}}
     if steps:
         extra["droop"]["steps_pct"] = steps
@@ -503,13 +503,16 @@ def test_change_penalty_keeps_todays_droop_when_cheaper(case_dir, steps, penalty
                       [{"event": "s", "kind": "load_step", "area": "Quillon", "size_mw": 80}])
     res = solve(case)
     a = alloc(res, "Quill_A")
+    headroom_cost = res.allocation["cost_per_h"].sum()
     if keep:
         assert a["droop_pct"] == pytest.approx(4.0, rel=1e-7)
-        assert res.objective_per_h == pytest.approx(200.0, rel=1e-7)
+        assert headroom_cost == pytest.approx(200.0, rel=1e-7)
+        assert res.change_penalty_total == 0.0
     else:
         moved = 390.0 if steps is None else 400.0
         assert a["gain_mw_per_hz"] == pytest.approx(moved, rel=1e-7)
-        assert res.objective_per_h == pytest.approx(2 * moved * 0.2 + penalty, rel=1e-7)
+        assert headroom_cost == pytest.approx(2 * moved * 0.2, rel=1e-7)
+        assert res.change_penalty_total == pytest.approx(penalty)
 
 
 # ------------------------------------------------------------------ regression pins
