@@ -20,6 +20,7 @@ from .program import LinearProgram
 # Penalty of the elastic (diagnosis) slacks: large against any headroom price so that a
 # relaxation is used only when nothing else can meet the limits.
 ELASTIC_PENALTY = 1.0e6
+TIE_BREAK_PER_MW_H = 1.0e-6
 
 
 @dataclass(frozen=True)
@@ -287,12 +288,15 @@ def build_model(case: Case, x_hat: np.ndarray | None = None, elastic: bool = Fal
         _rows_band(lp, K, U, np.tile(hz.K_lo, B), hz.K_hi_b.reshape(-1))
         part_cols, part_of = U.idx(), np.arange(B * N)
 
+    # a tiny tie-break price on headroom: free providers report the headroom their droop needs,
+    # not an arbitrary amount up to their room (the reported cost uses the real prices)
+    eps = TIE_BREAK_PER_MW_H
     hold_up = hz.avail & (hz.need_up[:, None] | (hz.own[:, hz.area] > 0))
     hold_dn = hz.avail & hz.need_dn[:, None]
     r_up = lp.add_vars("r_up", T * N, 0.0, np.where(hold_up, hz.R_up, 0.0).reshape(-1),
-                       cost=(hz.price_up * hz.hours[:, None]).reshape(-1))
+                       cost=((hz.price_up + eps) * hz.hours[:, None]).reshape(-1))
     r_dn = lp.add_vars("r_dn", T * N, 0.0, np.where(hold_dn, hz.R_dn, 0.0).reshape(-1),
-                       cost=(hz.price_dn * hz.hours[:, None]).reshape(-1))
+                       cost=((hz.price_dn + eps) * hz.hours[:, None]).reshape(-1))
     n_g = len(first)
     G = lp.add_vars("G", n_g * n_a * n_k, 0.0, np.inf)
 

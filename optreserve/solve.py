@@ -44,6 +44,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     x_hat = None
     iterations = 0
     history = []
+    retried = False
     while True:
         iterations += 1
         t0 = time.perf_counter()
@@ -53,7 +54,19 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         t_build += out.emit_time_s
         t_solve += out.solve_time_s
         if out.status == "infeasible":
-            if iterations == 1:
+            if iterations == 1 and _needs_fixed_point(info) and not retried:
+                # the first guess (every event at the limit) can misjudge dead-band flows:
+                # take the settled points of the least-violating allocation and try again
+                retried = True
+                e_lp, e_info = build_model(case, elastic=True, hz=hz)
+                e_out = solve_program(e_lp, engine="highspy")
+                if e_out.x is not None:
+                    guess = np.abs(_exact_deviation(e_info, e_lp, e_out.x))
+                    x_hat = np.where((hz.dP > 0) & np.isfinite(guess) & (guess > 0), guess,
+                                     info.x_hat)
+                    iterations = 0
+                    continue
+            if not history:
                 raise diagnose(case, hz)
             # the dead-band guess moved into an infeasible corner: keep the last good answer
             lp, info, out = history[-1]

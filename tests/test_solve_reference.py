@@ -532,3 +532,21 @@ def test_binding_event_without_load_damping_solves(case_dir):
     res = solve(case)
     assert res.objective_per_h == pytest.approx(1.57 * 59.897, rel=1e-7)
     assert event_row(res, "e")["settled_deviation_hz"] == pytest.approx(-0.2, abs=1e-6)
+
+
+def test_free_provider_reports_only_the_headroom_its_droop_needs(case_dir):
+    """formulation.md: headroom must hold the full droop response at F_act,
+    r >= K (F_act - d). A provider with a zero headroom price should still be told to hold
+    what its droop needs, K * F_act, not an arbitrary amount up to its whole physical room
+    (here 500 MW): the written headroom is what a planner would reserve. Hand arithmetic:
+    150 MW step, 10 MW/Hz of load damping, F = F_act = 0.2 -> at least 740 MW/Hz."""
+    units = [unit("Zell_Free", "Zell", 1000, 500, 2, 10, price_up=0),
+             unit("Zell_Paid", "Zell", 1000, 500, 2, 10, price_up=3)]
+    case = build_case(case_dir(), settings(), units,
+                      [{"area": "Zell", "load_mw": 1000, "load_damping_pct_per_hz": 1.0}],
+                      [{"event": "e", "kind": "load_step", "area": "Zell", "size_mw": 150}])
+    res = solve(case)
+    assert res.objective_per_h == pytest.approx(0.0, abs=1e-9)
+    free = alloc(res, "Zell_Free")
+    assert free["gain_mw_per_hz"] >= 740.0 - 1e-6
+    assert free["headroom_up_mw"] == pytest.approx(free["gain_mw_per_hz"] * 0.2, rel=1e-6)
