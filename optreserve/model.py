@@ -148,6 +148,8 @@ class Horizon:
     inst_area: np.ndarray
     trip: np.ndarray
     # droop blocks
+    H_sys: np.ndarray  # (M,) system inertia after the event [MW s], tripped unit's removed
+    T_act: np.ndarray  # (N,) activation time [s] (NaN: not given)
     K_hi_b: np.ndarray  # (B, N)
     capable_b: np.ndarray  # (B, N)
 
@@ -204,6 +206,8 @@ def prepare(case: Case) -> Horizon:
         K_hi_t=K_hi_t, avail=avail, R_up=R_up, R_dn=R_dn,
         price_up=um("price_up_per_mw_h").astype(float),
         price_dn=um("price_down_per_mw_h").astype(float),
+        H_sys=system_inertia(case, inst_t, ev_trip[e]),
+        T_act=case.units["activation_time_s"].to_numpy(float),
         need_up=need_up, need_dn=need_dn, D_a=damping,
         own=case.area_matrix("min_own_reserve_mw").astype(float),
         F0=case.link_matrix("flow_mw").astype(float).reshape(T, n_l),
@@ -212,6 +216,20 @@ def prepare(case: Case) -> Horizon:
         dP=dP, sigma=sigma, inst_area=ev_area[e], trip=ev_trip[e],
         K_hi_b=K_hi_b, capable_b=capable_b,
     )
+
+
+def system_inertia(case: Case, inst_t: np.ndarray, trip: np.ndarray) -> np.ndarray:
+    """Stored kinetic energy H_i * capacity_i [MW s] of the units online in each instance's
+    period, minus the tripped unit's. A unit counts as online when it runs (output not zero)
+    or may provide reserve; a missing inertia_s counts as zero."""
+    cap = case.units["capacity_mw"].to_numpy(float)
+    H = np.nan_to_num(case.units["inertia_s"].to_numpy(float)) * cap  # (N,)
+    online = (case.unit_matrix("output_mw").astype(float) != 0) | case.unit_matrix(
+        "provides").astype(bool)
+    per_t = (online * H[None, :]).sum(axis=1)  # (T,)
+    lost = np.where(trip >= 0, H[np.maximum(trip, 0)] * online[inst_t, np.maximum(trip, 0)],
+                    0.0)
+    return per_t[inst_t] - lost
 
 
 @dataclass
@@ -309,6 +327,8 @@ def build_model(case: Case, x_hat: np.ndarray | None = None, elastic: bool = Fal
         _rows_own_reserve(lp, hz, r_up, part_cols, part_of, elastic)
     ginfo = (group_of_t, n_a, n_k, classes)
     _rows_settled(lp, hz, K, G, ginfo, F_model, elastic)
+    if case.limits.max_nadir_deviation_hz is not None:
+        _rows_nadir(lp, case, hz, r_up, r_dn, elastic)
     if len(case.links):
         _rows_flows(lp, hz, K, G, ginfo, x_hat, elastic)
     change_cols = _rows_change(lp, case, hz, K, st, relax)
@@ -411,6 +431,38 @@ def _rows_settled(lp, hz: Horizon, K, G, ginfo, F_m, elastic):
         rows, cols, vals = np.r_[rows, np.arange(M)], np.r_[cols, S.idx()], np.r_[
             vals, np.ones(M)]
     lp.add_rows("settled", M, rows, cols, vals, lo=hz.dP - F_m * hz.D_a[hz.inst_t].sum(axis=1))
+
+
+def nadir_ramp_needed(case: Case, hz: Horizon) -> np.ndarray:
+    """Per instance the aggregate ramp rate [MW/s] the nadir limit needs. A step loss dP met
+    by response ramping at rate rho, inertia H (MW s), no damping, reaches its nadir when the
+    response equals dP, at t* = dP / rho, with |df| = f_n dP^2 / (4 H rho) (ramp model;
+    docs/formulation.md). |df| <= N  <=>  rho >= f_n dP^2 / (4 H N)."""
+    N_max = case.limits.max_nadir_deviation_hz
+    with np.errstate(divide="ignore", invalid="ignore"):
+        need = case.nominal_frequency_hz * hz.dP ** 2 / (4.0 * hz.H_sys * N_max)
+    return np.where(hz.dP > 0, need, 0.0)
+
+
+def _rows_nadir(lp, case, hz: Horizon, r_up, r_dn, elastic):
+    """sum_i r_ti / T_i >= f_n dP^2 / (4 H N_max): each provider ramps its headroom linearly
+    over its activation time T_i; the sum of those rates is the aggregate ramp before the
+    nadir. Units without an activation time do not count."""
+    N, M = hz.N, len(hz.dP)
+    need = nadir_ramp_needed(case, hz)
+    T = np.where(np.isfinite(hz.T_act) & (hz.T_act > 0), hz.T_act, np.inf)
+    rate = 1.0 / T
+    mm, ii = np.nonzero((rate[None, :] > 0) & hz.avail[hz.inst_t])
+    tr = hz.trip[mm] == ii
+    mm, ii = mm[~tr], ii[~tr]
+    up = hz.sigma[mm] > 0
+    cols = np.where(up, r_up.idx(hz.inst_t[mm] * N + ii), r_dn.idx(hz.inst_t[mm] * N + ii))
+    rows, vals = mm, rate[ii]
+    if elastic:
+        S = lp.add_vars("slack_nadir", M, 0.0, np.inf, cost=ELASTIC_PENALTY)
+        rows, cols, vals = np.r_[rows, np.arange(M)], np.r_[cols, S.idx()], np.r_[
+            vals, np.ones(M)]
+    lp.add_rows("nadir", M, rows, cols, vals, lo=np.where(np.isfinite(need), need, 0.0))
 
 
 def flow_weights(hz: Horizon, inst=None):

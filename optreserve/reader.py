@@ -98,7 +98,7 @@ UNIT_COLS = [
     Col("price_down_per_mw_h", "float", False, 0.0, check=_nonneg),
     Col("provides", "bool", False, True),
     Col("inertia_s", "float", False, math.nan, check=_nonneg),
-    Col("activation_time_s", "float", False, math.nan, check=_nonneg),
+    Col("activation_time_s", "float", False, math.nan, check=_positive),
 ]
 AREA_COLS = [
     Col("area", "id", True),
@@ -509,6 +509,15 @@ def load_case(path: str | Path) -> Case:
             "providers saturate beyond it, so every settled point is kept within "
             f"{F_act} Hz (the unsaturated range)",
         )
+    if settings.get("limits.max_nadir_deviation_hz") is not None:
+        prov = units["provides"].to_numpy(bool)
+        if units["inertia_s"].isna().all():
+            col.warn(lab("units.csv"), "max_nadir_deviation_hz is set but no unit has "
+                     "inertia_s: the nadir requirement cannot be met", None, "inertia_s")
+        n_no_t = int((prov & units["activation_time_s"].isna().to_numpy()).sum())
+        if n_no_t:
+            col.warn(lab("units.csv"), f"{n_no_t} provider(s) without activation_time_s count "
+                     "for nothing in the nadir requirement", None, "activation_time_s")
     steps = settings.get("droop.steps_pct")
     if steps is not None:
         lo = units["droop_min_pct"].to_numpy()

@@ -279,6 +279,12 @@ def diagnose(case: Case, hz: Horizon | None = None) -> InfeasibleError:
             rows.append({"family": "link", "element": link_ids[li], "event": hz.inst_name[m],
                          "period": labels[t], "short_mw": 0.0, "excess_hz": 0.0,
                          "over_mw": float(over_all[m, li])})
+    if "slack_nadir" in lp.var_blocks:
+        s_nad = lp.value(out.x, "slack_nadir")
+        for m in np.nonzero(s_nad > 1e-6)[0]:
+            rows.append({"family": "nadir", "element": hz.inst_name[m], "event": hz.inst_name[m],
+                         "period": labels[hz.inst_t[m]], "short_mw": float(s_nad[m]),
+                         "excess_hz": 0.0, "over_mw": 0.0})
     if "slack_own" in lp.var_blocks:
         ta, aa = np.nonzero(hz.own > 0)
         s_own = lp.value(out.x, "slack_own")
@@ -297,6 +303,9 @@ def diagnose(case: Case, hz: Horizon | None = None) -> InfeasibleError:
             lines.append(f"event {r['element']}{when}: {r['short_mw']:.1f} MW of response "
                          f"missing at the limit (settles {r['excess_hz'] * 1000:.1f} mHz beyond "
                          f"{F * 1000:.0f} mHz)")
+        elif r["family"] == "nadir":
+            lines.append(f"event {r['element']}{when}: nadir limit needs {r['short_mw']:.1f} MW/s "
+                         "more ramp rate (headroom over activation time)")
         elif r["family"] == "link":
             lines.append(f"link {r['element']}: {r['over_mw']:.1f} MW over its limit after "
                          f"event {r['event']}{when}")
