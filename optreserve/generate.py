@@ -105,23 +105,38 @@ def generate(spec: Spec, out: str | Path) -> Path:
                       rng.normal(0, 0.03, T), 0.05, 0.9)
     load = sys_load[:, None] * area_share[None, :]  # (T, A)
 
-    # merit-order dispatch each period: units start in cost order, each at 80 % of capacity
-    # (headroom both ways), until the load is covered; the last one takes the remainder
+    # merit-order commitment each period: wind at its capacity factor and baseload at 90 %
+    # run first; then units start in cost order until the committed capacity covers the
+    # remaining load at 75 % loading, and every started unit runs at the same loading
+    # (headroom both ways, like a real spinning-reserve margin)
+    n_trip_units = max(1, spec.events - 2) if spec.events >= 3 else spec.events
+    reserve_need = 1.5 * 0.9 * np.sort(np.where(is_batt | is_wind, 0.0, cap))[::-1][
+        :n_trip_units].max(initial=0.0)
     output = np.zeros((T, N))
     online = np.zeros((T, N), dtype=bool)
-    order = [i for i in np.argsort(energy, kind="stable") if not (is_batt[i] or is_wind[i])]
+    is_base = np.array([k == "nuclear" for k in kind])
+    order = [i for i in np.argsort(energy, kind="stable")
+             if not (is_batt[i] or is_wind[i] or is_base[i])]
     for t in range(T):
         out_t = np.zeros(N)
-        on = np.zeros(N, dtype=bool)
+        on = is_wind | is_batt | is_base
         out_t[is_wind] = (cap[is_wind] * wind_cf[t]).round(1)
-        on[is_wind | is_batt] = True
-        need = sys_load[t] - out_t[is_wind].sum()
+        out_t[is_base] = 0.9 * cap[is_base]
+        need = max(sys_load[t] - out_t.sum(), 0.0)
+        committed = 0.0
+        # spinning reserve: enough committed providers that about 12 % of their capacity
+        # (what droop bands and headroom typically allow at 0.2 Hz) covers 1.5x the largest trip
+        spinning = 0.2 * cap[is_batt].sum()
         for i in order:
-            if need <= 0:
+            if committed * 0.75 >= need and spinning >= reserve_need:
                 break
             on[i] = True
-            out_t[i] = max(min_out[i], min(0.8 * cap[i], need))
-            need -= out_t[i]
+            committed += cap[i]
+            spinning += 0.12 * cap[i]
+        started = on & ~(is_wind | is_batt | is_base)
+        if committed > 0:
+            share = np.clip(need / committed, 0.0, 0.9)
+            out_t[started] = np.maximum(min_out[started], share * cap[started])
         output[t] = out_t.round(1)
         online[t] = on
     # offline units carry no reserve and sit at zero output (min output applies when running)
