@@ -147,9 +147,11 @@ class Horizon:
     sigma: np.ndarray
     inst_area: np.ndarray
     trip: np.ndarray
-    # droop blocks
+    absent: np.ndarray  # (M,) a provider that gives no response in this instance (-1: none)
+    inst_event: np.ndarray  # (M,) row of case.events the instance comes from
     H_sys: np.ndarray  # (M,) system inertia after the event [MW s], tripped unit's removed
     T_act: np.ndarray  # (N,) activation time [s] (NaN: not given)
+    # droop blocks
     K_hi_b: np.ndarray  # (B, N)
     capable_b: np.ndarray  # (B, N)
 
@@ -214,6 +216,7 @@ def prepare(case: Case) -> Horizon:
         Fmax=case.link_matrix("limit_mw").astype(float).reshape(T, n_l), Phi=Phi,
         inst_name=[str(x) for x in ev["event"].to_numpy(object)[e]], inst_t=inst_t,
         dP=dP, sigma=sigma, inst_area=ev_area[e], trip=ev_trip[e],
+        absent=np.full(len(e), -1, dtype=np.int64), inst_event=e.astype(np.int64),
         K_hi_b=K_hi_b, capable_b=capable_b,
     )
 
@@ -405,12 +408,17 @@ def _rows_own_reserve(lp, hz: Horizon, r_up, part_cols, part_of, elastic):
     lp.add_rows("own_reserve", n_rows, rows, cols, vals, lo=hz.own[ta, aa])
 
 
-def _trip_live(hz: Horizon, inst):
-    """Instances (of those given) whose tripped unit responds in its period, and that unit."""
-    j = hz.trip[inst]
-    ok = j >= 0
-    ok[ok] = hz.avail[hz.inst_t[inst][ok], j[ok]]
-    return inst[ok], j[ok]
+def _removed(hz: Horizon, inst):
+    """(instance, unit) pairs, for the instances given, of providers that respond in their
+    period but not in the instance: the tripped unit and any absent provider."""
+    out_m, out_j = [], []
+    for arr in (hz.trip, hz.absent):
+        j = arr[inst]
+        ok = j >= 0
+        ok[ok] = hz.avail[hz.inst_t[inst][ok], j[ok]]
+        out_m.append(inst[ok])
+        out_j.append(j[ok])
+    return np.concatenate(out_m), np.concatenate(out_j)
 
 
 def _rows_settled(lp, hz: Horizon, K, G, ginfo, F_m, elastic):
@@ -422,7 +430,7 @@ def _rows_settled(lp, hz: Horizon, K, G, ginfo, F_m, elastic):
     rows = np.repeat(np.arange(M), n_a * n_k)
     cols = G.idx((g[:, None] * n_a * n_k + np.arange(n_a * n_k)[None, :]).reshape(-1))
     vals = np.tile(w, M)
-    te, j = _trip_live(hz, np.arange(M))
+    te, j = _removed(hz, np.arange(M))
     rows = np.r_[rows, te]
     cols = np.r_[cols, K.idx(hz.block[hz.inst_t[te]] * N + j)]
     vals = np.r_[vals, -np.maximum(F_m - hz.d_hz[j], 0.0)]
@@ -453,7 +461,7 @@ def _rows_nadir(lp, case, hz: Horizon, r_up, r_dn, elastic):
     T = np.where(np.isfinite(hz.T_act) & (hz.T_act > 0), hz.T_act, np.inf)
     rate = 1.0 / T
     mm, ii = np.nonzero((rate[None, :] > 0) & hz.avail[hz.inst_t])
-    tr = hz.trip[mm] == ii
+    tr = (hz.trip[mm] == ii) | (hz.absent[mm] == ii)
     mm, ii = mm[~tr], ii[~tr]
     up = hz.sigma[mm] > 0
     cols = np.where(up, r_up.idx(hz.inst_t[mm] * N + ii), r_dn.idx(hz.inst_t[mm] * N + ii))
@@ -482,7 +490,8 @@ def flow_weights(hz: Horizon, inst=None):
 
 def _rows_flows(lp, hz: Horizon, K, G, ginfo, x_hat, elastic):
     """Exact post-event link limits in the multiply-by-beta' form, beta'_a = sum_k c_k G_ak
-    (- c_j K_j for a tripped provider) + D_a, with c = (1 - d/x)^+ at the settled guess x."""
+    (- c_j K_j for a tripped or absent provider j, in j's area) + D_a, with c = (1 - d/x)^+
+    at the settled guess x."""
     group_of_t, n_a, n_k, classes = ginfo
     N = hz.N
     n_l = hz.F0.shape[1]
@@ -493,7 +502,7 @@ def _rows_flows(lp, hz: Horizon, K, G, ginfo, x_hat, elastic):
     D = hz.D_a[hz.inst_t[live]]  # (E', A)
     g = group_of_t[hz.inst_t[live]]
     gcols = G.idx((g[:, None] * n_a * n_k + np.arange(n_a * n_k)[None, :]))  # (E', A*K)
-    te_abs, j = _trip_live(hz, live)
+    te_abs, j = _removed(hz, live)
     te = np.searchsorted(live, te_abs)
     cj = np.clip(1.0 - hz.d_hz[j] / np.where(x_hat[te_abs] > 0, x_hat[te_abs], np.inf), 0, 1)
     kcol = K.idx(hz.block[hz.inst_t[te_abs]] * N + j)
@@ -505,7 +514,7 @@ def _rows_flows(lp, hz: Horizon, K, G, ginfo, x_hat, elastic):
         cols = np.r_[Bv.idx(), gcols.reshape(-1)]
         vals = np.r_[np.ones(ne * n_a), -np.repeat(c, n_a, axis=0).reshape(-1)]
         if len(te):
-            rows = np.r_[rows, te * n_a + hz.inst_area[te_abs]]
+            rows = np.r_[rows, te * n_a + hz.area[j]]
             cols = np.r_[cols, kcol]
             vals = np.r_[vals, cj]
         lp.add_rows("beta_def", ne * n_a, rows, cols, vals, lo=0.0, hi=0.0)
@@ -522,7 +531,7 @@ def _rows_flows(lp, hz: Horizon, K, G, ginfo, x_hat, elastic):
             cols = np.repeat(gcols, n_l, axis=0).reshape(-1)
             vals = coef.reshape(-1)
             if len(te):
-                tv = -W[te, :, hz.inst_area[te_abs]] * cj[:, None]  # (T', L)
+                tv = -W[te, :, hz.area[j]] * cj[:, None]  # (T', L)
                 rows = np.r_[rows, (te[:, None] * n_l + np.arange(n_l)[None, :]).reshape(-1)]
                 cols = np.r_[cols, np.repeat(kcol, n_l)]
                 vals = np.r_[vals, tv.reshape(-1)]

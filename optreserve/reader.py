@@ -24,6 +24,7 @@ import pandas as pd
 
 from .case import Case, DroopSettings, Limits, SolverSettings
 from .errors import CaseError, Problem
+from .rules import fill_limits, rule_warnings
 
 MAX_PROBLEMS = 50
 
@@ -311,6 +312,7 @@ _TOML_SCHEMA: dict[str, dict[str, str]] = {
         "full_activation_deviation_hz": "pos",
         "max_nadir_deviation_hz": "pos",
         "max_rocof_hz_per_s": "pos",
+        "rules": "str",  # a regulatory parameter set (rules.py) filling the limits not given
     },
     "droop": {"steps_pct": "poslist", "change_penalty_per_unit": "nonneg",
               "hold_periods": "posint"},
@@ -418,6 +420,10 @@ def load_case(path: str | Path) -> Case:
         col.error(lab("case.toml"), "is missing")
     else:
         settings = _read_toml(folder / "case.toml", lab("case.toml"), col) or {}
+        if (msg := fill_limits(settings)) is not None:  # [limits] rules = "NAME"
+            col.error(lab("case.toml"), msg, _toml_line(
+                (folder / "case.toml").read_text(encoding="utf-8-sig"), "limits", "rules"),
+                "limits.rules")
 
     tables: dict[str, pd.DataFrame | None] = {}
     for name, cols, required in (
@@ -509,6 +515,8 @@ def load_case(path: str | Path) -> Case:
             "providers saturate beyond it, so every settled point is kept within "
             f"{F_act} Hz (the unsaturated range)",
         )
+    for file, msg, row, column in rule_warnings(settings.get("limits.rules"), units, events):
+        col.warn(lab(file), msg, row, column)
     if settings.get("limits.max_nadir_deviation_hz") is not None:
         prov = units["provides"].to_numpy(bool)
         if units["inertia_s"].isna().all():

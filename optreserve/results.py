@@ -86,10 +86,10 @@ class Result:
         allocation = pd.DataFrame(alloc)
         M = len(hz.dP)
         ev = case.events
-        e_idx = case.instances()["event_index"].to_numpy()
+        e_idx = hz.inst_event
         dev = points.deviation_hz
         per = np.array(labels, dtype=object)[hz.inst_t]
-        events = pd.DataFrame({"event": ev["event"].to_numpy(object)[e_idx]})
+        events = pd.DataFrame({"event": np.array(hz.inst_name, dtype=object)})
         if horizon:
             events["period"] = per
         events["kind"] = ev["kind"].to_numpy(object)[e_idx]

@@ -168,10 +168,11 @@ class BatchPoints:
 
 
 def settle_instances(dP, sigma, t, area_e, trip, gain, r_up, r_dn, d_hz, unit_area, D_a,
-                     F0, from_idx, to_idx, reactance) -> BatchPoints:
+                     F0, from_idx, to_idx, reactance, absent=None) -> BatchPoints:
     """Settled points of M event instances: instance m happens in period t[m] with per-period
     gains and headroom (T, N), per-period load self-regulation D_a (T, A), pre-event flows
-    F0 (T, L) and reactances (T, L); trip[m] is the tripped unit or -1."""
+    F0 (T, L) and reactances (T, L); trip[m] is the tripped unit or -1; absent[m] a unit that
+    gives no response in instance m (its output is not lost) or -1."""
     M = len(dP)
     gain = np.asarray(gain, float)
     # only units that respond in some period matter; the rest would only cost time
@@ -179,8 +180,9 @@ def settle_instances(dP, sigma, t, area_e, trip, gain, r_up, r_dn, d_hz, unit_ar
     col_of = np.full(gain.shape[1], -1)
     col_of[live] = np.arange(len(live))
     K = gain[t][:, live]
-    tr = np.nonzero((trip >= 0) & (col_of[np.maximum(trip, 0)] >= 0))[0]
-    K[tr, col_of[trip[tr]]] = 0.0
+    for out in (trip, absent if absent is not None else np.full(M, -1)):
+        tr = np.nonzero((out >= 0) & (col_of[np.maximum(out, 0)] >= 0))[0]
+        K[tr, col_of[out[tr]]] = 0.0
     r = np.where((sigma > 0)[:, None], np.asarray(r_up, float)[t][:, live],
                  np.asarray(r_dn, float)[t][:, live])
     d_hz = np.asarray(d_hz, float)[live]

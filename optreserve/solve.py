@@ -125,7 +125,7 @@ def exact_points(info: ModelInfo, lp: LinearProgram, x: np.ndarray) -> BatchPoin
         hz.dP, hz.sigma, hz.inst_t, hz.inst_area, hz.trip, gain, r_up, r_dn, hz.d_hz, hz.area,
         hz.D_a, hz.F0, [apos[a] for a in case.links["from_area"]],
         [apos[a] for a in case.links["to_area"]],
-        case.link_matrix("reactance_pu").astype(float))
+        case.link_matrix("reactance_pu").astype(float), absent=hz.absent)
 
 
 def _exact_deviation(info, lp, x) -> np.ndarray:
@@ -142,13 +142,14 @@ def model_beta(lp: LinearProgram, info: ModelInfo, x: np.ndarray) -> np.ndarray:
     t = hz.inst_t
     c = effective_factor(info.classes, info.x_hat)  # (M, K)
     beta = (G[info.group_of_t[t]] * c[:, None, :]).sum(axis=2) + hz.D_a[t]  # (M, A)
-    m = np.nonzero(hz.trip >= 0)[0]
-    j = hz.trip[m]
-    m, j = m[hz.avail[t[m], j]], j[hz.avail[t[m], j]]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        cj = np.clip(1.0 - hz.d_hz[j] / np.where(info.x_hat[m] > 0, info.x_hat[m], np.inf),
-                     0.0, 1.0)
-    np.subtract.at(beta, (m, hz.inst_area[m]), cj * K[hz.block[t[m]] * hz.N + j])
+    for arr in (hz.trip, hz.absent):  # providers that respond in the period but not here
+        m = np.nonzero(arr >= 0)[0]
+        j = arr[m]
+        m, j = m[hz.avail[t[m], j]], j[hz.avail[t[m], j]]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            cj = np.clip(1.0 - hz.d_hz[j] / np.where(info.x_hat[m] > 0, info.x_hat[m], np.inf),
+                         0.0, 1.0)
+        np.subtract.at(beta, (m, hz.area[j]), cj * K[hz.block[t[m]] * hz.N + j])
     return beta
 
 
