@@ -83,6 +83,16 @@ class LinearProgram:
         self._A = None
         return b
 
+    def set_cost(self, name: str, cost) -> None:
+        """Replace the objective coefficients of one variable block."""
+        b = self.var_blocks[name]
+        k = list(self.var_blocks).index(name)
+        self._cost[k] = np.broadcast_to(np.asarray(cost, float), (b.size,)).copy()
+
+    def zero_costs(self) -> None:
+        for k, c in enumerate(self._cost):
+            self._cost[k] = np.zeros_like(c)
+
     # ---------------------------------------------------------------- views
     @property
     def col_lo(self) -> np.ndarray:

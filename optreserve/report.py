@@ -14,13 +14,13 @@ written to a temporary file first and then renamed into place.
 from __future__ import annotations
 
 import base64
+import functools
 import html
 import io
 import json
 import math
 import os
 import re
-import tempfile
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -163,8 +163,7 @@ def read_table(path: Path, schema: dict | None) -> pd.DataFrame:
         if c not in raw.columns:
             raise ReportError(f"{path} column {c}: missing from the header")
     for c in cols:
-        kind = schema.get(c, "num" if c not in ("period", "unit", "direction") and
-                          schema is _WIDE else "text")
+        kind = schema.get(c, "num" if schema is _WIDE else "text")
         s = raw[c].astype(str).str.strip()
         if kind == "text":
             out[c] = s.to_numpy(object)
@@ -420,25 +419,30 @@ _RC = {
 }
 
 
-def _new_figure(width_in: float, height_in: float, name: str):
-    import matplotlib
+def _styled(name: str):
+    """Decorator: draw the plot inside the report's matplotlib style; the SVG ids get a salt
+    of their own per plot so that several inline SVGs never share an id."""
+    def wrap(fn):
+        @functools.wraps(fn)
+        def inner(*args, **kwargs):
+            import matplotlib
 
-    from matplotlib.figure import Figure
+            with matplotlib.rc_context({**_RC, "svg.hashsalt": f"optreserve-{name}"}):
+                return fn(*args, **kwargs)
+        return inner
+    return wrap
 
-    ctx = matplotlib.rc_context({**_RC, "svg.hashsalt": f"optreserve-{name}"})
-    ctx.__enter__()
-    fig = Figure(figsize=(width_in, height_in), layout="constrained")
-    fig._optreserve_ctx = ctx
-    return fig
+
+def _new_figure(width_in: float, height_in: float):
+    from matplotlib.figure import Figure  # no pyplot: no GUI backend, no global state
+
+    return Figure(figsize=(width_in, height_in), layout="constrained")
 
 
 def _svg(fig, name: str, label: str) -> str:
     """Inline SVG: no XML prolog, scales with its container, ids unique per figure."""
     buf = io.StringIO()
-    try:
-        fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None})
-    finally:
-        fig._optreserve_ctx.__exit__(None, None, None)
+    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None})
     text = buf.getvalue()
     text = text[text.index("<svg"):]
     head_end = text.index(">")
@@ -466,6 +470,7 @@ def _thin_ticks(n: int, most: int = 24) -> np.ndarray:
     return np.arange(0, n, step)
 
 
+@_styled("characteristics")
 def plot_characteristics(rf: ResultFolder) -> tuple[str, str]:
     """Frequency against power: the aggregate settled response per area and for the system,
     the settled limit, and every event's settled point."""
@@ -488,7 +493,7 @@ def plot_characteristics(rf: ResultFolder) -> tuple[str, str]:
     colours = _area_colour(list(dict.fromkeys(rf.allocation["area"])))
     damping = _damping_mw_per_hz(rf, period)
 
-    fig = _new_figure(10.4, 4.3, "characteristics")
+    fig = _new_figure(10.4, 4.3)
     ax1, ax2 = fig.subplots(1, 2, sharey=True)
     y = fn + grid
     for a in areas:
@@ -540,6 +545,7 @@ def plot_characteristics(rf: ResultFolder) -> tuple[str, str]:
     return svg, cap
 
 
+@_styled("events")
 def plot_events(rf: ResultFolder) -> tuple[str, str]:
     """Settled deviation of every event against its limit (per period for horizons)."""
     ev = rf.events
@@ -550,7 +556,7 @@ def plot_events(rf: ResultFolder) -> tuple[str, str]:
     dev = ev["settled_deviation_hz"].to_numpy(float) * 1000
     lim = float(ev["limit_hz"].max()) * 1000
     span = max(1.18 * lim, 1.1 * np.abs(dev).max(initial=0))
-    fig = _new_figure(10.4, 1.1 + 0.34 * max(n, 3), "events")
+    fig = _new_figure(10.4, 1.1 + 0.34 * max(n, 3))
     ax = fig.subplots()
     ax.axvspan(lim, span, color=LIMIT, alpha=0.1, lw=0)
     ax.axvspan(-span, -lim, color=LIMIT, alpha=0.1, lw=0)
@@ -601,6 +607,7 @@ def _loading_cmap():
                                (0.95, "#d3741f"), (1.0, ALERT)])
 
 
+@_styled("links")
 def plot_links(rf: ResultFolder) -> tuple[str, str] | None:
     """Link loading (% of limit) after every event: a links x events matrix."""
     lk = rf.links
@@ -612,7 +619,7 @@ def plot_links(rf: ResultFolder) -> tuple[str, str] | None:
     m = m.reindex(index=links, columns=events)
     L, E = m.shape
     fig = _new_figure(10.4, min(1.6 + 0.36 * L + 0.09 * max(len(str(e)) for e in events),
-                                14.0), "links")
+                                14.0))
     ax = fig.subplots()
     im = ax.imshow(m.to_numpy(float), cmap=_loading_cmap(), vmin=0, vmax=100,
                    aspect="auto", interpolation="nearest")
@@ -640,6 +647,7 @@ def plot_links(rf: ResultFolder) -> tuple[str, str] | None:
     return svg, cap
 
 
+@_styled("areas")
 def plot_area_costs(rf: ResultFolder) -> tuple[str, str]:
     a = rf.allocation
     areas = list(dict.fromkeys(a["area"]))
@@ -647,7 +655,7 @@ def plot_area_costs(rf: ResultFolder) -> tuple[str, str]:
     g = a.groupby("area", sort=False)[["headroom_up_mw", "headroom_down_mw", "cost_per_h"]] \
         .sum().reindex(areas) / T
     colours = _area_colour(areas)
-    fig = _new_figure(10.4, 1.3 + 0.38 * max(len(areas), 2), "areas")
+    fig = _new_figure(10.4, 1.3 + 0.38 * max(len(areas), 2))
     ax1, ax2 = fig.subplots(1, 2)
     y = np.arange(len(areas))
     h = 0.38
@@ -680,6 +688,7 @@ def _heat_cmap():
                                 (1.0, "#143a4a")])
 
 
+@_styled("heatmap")
 def plot_heatmap(rf: ResultFolder) -> tuple[str, str] | None:
     """Units x periods headroom (up; and down when it differs)."""
     periods = rf.periods
@@ -704,7 +713,7 @@ def plot_heatmap(rf: ResultFolder) -> tuple[str, str] | None:
     if not same:
         panels.append(("down", dn.loc[order]))
     n = len(order)
-    fig = _new_figure(10.4, min(0.9 + len(panels) * (0.55 + 0.17 * n), 22.0), "heatmap")
+    fig = _new_figure(10.4, min(0.9 + len(panels) * (0.55 + 0.17 * n), 22.0))
     axes = fig.subplots(len(panels), 1, squeeze=False)[:, 0]
     vmax = max(float(p[1].to_numpy().max()) for p in panels)
     labels = _short_period(periods)
@@ -736,6 +745,7 @@ def plot_heatmap(rf: ResultFolder) -> tuple[str, str] | None:
     return svg, cap
 
 
+@_styled("period-costs")
 def plot_period_costs(rf: ResultFolder) -> tuple[str, str]:
     a = rf.allocation
     periods = rf.periods
@@ -743,7 +753,7 @@ def plot_period_costs(rf: ResultFolder) -> tuple[str, str]:
     m = a.pivot_table(index="period", columns="area", values="cost_per_h", aggfunc="sum",
                       sort=False).reindex(index=periods, columns=areas).fillna(0.0)
     colours = _area_colour(areas)
-    fig = _new_figure(10.4, 3.3, "period-costs")
+    fig = _new_figure(10.4, 3.3)
     ax = fig.subplots()
     x = np.arange(len(periods))
     bottom = np.zeros(len(periods))
@@ -778,7 +788,7 @@ def _fmt(v, spec: str) -> str:
         return "yes" if v else ""
     if spec == "text":
         return str(v)
-    out = format(float(v), spec)
+    out = format(int(round(float(v))), spec) if spec.endswith("d") else format(float(v), spec)
     return out.replace("-", "−") if out.startswith("-") else out
 
 
@@ -1027,9 +1037,7 @@ def _unit_table_frame(rf: ResultFolder) -> tuple[pd.DataFrame, list]:
                 Col("cost_per_h", "cost", ",.2f", "per h")]
     else:
         g = a.groupby("unit", sort=False)
-        df = pd.DataFrame({
-            "unit": list(g.groups.keys()) if False else a["unit"].drop_duplicates().to_numpy(),
-        })
+        df = pd.DataFrame({"unit": a["unit"].drop_duplicates().to_numpy()})
         agg = g.agg(area=("area", "first"), periods_on=("provides", "sum"),
                     droop_min=("droop_pct", "min"), droop_max=("droop_pct", "max"),
                     gain_max=("gain_mw_per_hz", "max"), up=("headroom_up_mw", "max"),
@@ -1331,7 +1339,8 @@ def render(rf: ResultFolder) -> str:
 
     def add(sid, title, text, warn=False):
         sections.append(text)
-        toc.append(f'<a href="#{sid}"{" class=\"warn\"" if warn else ""}>{_esc(title)}</a>')
+        cls = ' class="warn"' if warn else ""
+        toc.append(f'<a href="#{sid}"{cls}>{_esc(title)}</a>')
 
     if rf.solved:
         add("case", "Case", section_case(rf))
@@ -1370,12 +1379,11 @@ def build_report(result_dir, case_dir=None) -> Path:
     rf = read_result(result_dir, case_dir)
     page = render(rf)
     out = rf.folder / REPORT_NAME
-    fd, tmp = tempfile.mkstemp(prefix=f".{REPORT_NAME}.", dir=rf.folder)
+    tmp = rf.folder / f".{REPORT_NAME}.{os.getpid()}.tmp"  # then renamed: all or nothing
     try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(page)
+        tmp.write_text(page, encoding="utf-8")
         os.replace(tmp, out)
     except BaseException:
-        Path(tmp).unlink(missing_ok=True)
+        tmp.unlink(missing_ok=True)
         raise
     return out

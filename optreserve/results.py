@@ -49,6 +49,10 @@ class Result:
     relaxed: bool = False
     change_penalty_total: float = 0.0
     objective_total: float | None = None
+    # per area (and period): reserve_price_per_mw_h, next_mw_up_cost_per_mw_h (solve.area_prices)
+    prices: pd.DataFrame | None = None
+    # further files written with the result: name -> DataFrame (CSV) or dict (JSON)
+    extra_files: dict = field(default_factory=dict)
 
     # ------------------------------------------------------------------ construction
     @classmethod
@@ -211,6 +215,13 @@ class Result:
             write_table(self.allocation, tmp / "allocation.csv")
             write_table(self.events, tmp / "events.csv")
             write_table(self.links, tmp / "links.csv")
+            if self.prices is not None:
+                write_table(self.prices, tmp / "prices.csv")
+            for name, obj in self.extra_files.items():
+                if isinstance(obj, pd.DataFrame):
+                    write_table(obj, tmp / name)
+                else:
+                    (tmp / name).write_text(json.dumps(obj, indent=2) + "\n")
             if self.case.is_horizon:
                 write_table(self.schedule_wide(), tmp / "schedule_wide.csv")
             self.timings_s["write"] = time.perf_counter() - t0

@@ -4,6 +4,7 @@ independently, read prices, and return a Result of pandas tables."""
 from __future__ import annotations
 
 import time
+from typing import Callable
 
 import numpy as np
 import pandas as pd
@@ -26,11 +27,16 @@ FIXED_POINT_MAX_ITER = 30
 
 
 def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
-          mip_gap: float | None = None, relax: bool = False, verbose: bool = False) -> Result:
+          mip_gap: float | None = None, relax: bool = False, verbose: bool = False,
+          extend: Callable[[LinearProgram, ModelInfo], None] | None = None,
+          hz: Horizon | None = None) -> Result:
     """Least-cost droop and headroom allocation meeting every event's limits.
 
     engine: "pyomo" (Pyomo model on Pyomo's HiGHS interface), "highspy" (bulk load), or
     "auto" (Pyomo for small models, bulk above backends.AUTO_BULK_NONZEROS nonzeros).
+    extend: called on every model built (lp, info) to add blocks or change the objective
+      (studies such as retune proposals); the result's cost is always the headroom cost.
+    hz: the stacked case (model.prepare), e.g. with extra event instances.
     Raises InfeasibleError (with a diagnosis) when no allocation meets the limits."""
     t_start = time.perf_counter()
     time_limit = time_limit if time_limit is not None else case.solver.time_limit_s
@@ -38,7 +44,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     opts = dict(time_limit=time_limit, mip_gap=mip_gap, verbose=verbose)
 
     t0 = time.perf_counter()
-    hz = prepare(case)
+    hz = prepare(case) if hz is None else hz
     t_build = time.perf_counter() - t0
     t_solve = 0.0
     x_hat = None
@@ -49,6 +55,8 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         iterations += 1
         t0 = time.perf_counter()
         lp, info = build_model(case, x_hat=x_hat, relax=relax, hz=hz)
+        if extend is not None:
+            extend(lp, info)
         t_build += time.perf_counter() - t0
         out = solve_program(lp, engine=engine, want_duals=not lp.is_mip, **opts)
         t_build += out.emit_time_s
@@ -59,6 +67,8 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
                 # take the settled points of the least-violating allocation and try again
                 retried = True
                 e_lp, e_info = build_model(case, elastic=True, hz=hz)
+                if extend is not None:
+                    extend(e_lp, e_info)
                 e_out = solve_program(e_lp, engine="highspy")
                 if e_out.x is not None:
                     guess = np.abs(_exact_deviation(e_info, e_lp, e_out.x))
@@ -67,27 +77,29 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
                     iterations = 0
                     continue
             if not history:
-                raise diagnose(case, hz)
+                raise diagnose(case, hz, extend)
             # the dead-band guess moved into an infeasible corner: keep the last good answer
             lp, info, out = history[-1]
+            points = None
             break
         if out.x is None:
             raise SolverError(f"HiGHS stopped without a usable allocation ({out.status}: "
                               f"{out.message})")
         history.append((lp, info, out))
+        points = exact_points(info, lp, out.x)
+        exact = np.abs(points.deviation_hz)
+        live = hz.dP > 0
         if not _needs_fixed_point(info):
             # no row depends on the settled guess: the exact deviation is the model's own
-            info.x_hat = np.where(hz.dP > 0, np.abs(_exact_deviation(info, lp, out.x)),
-                                  info.x_hat)
+            info.x_hat = np.where(live, exact, info.x_hat)
             break
-        exact = np.abs(_exact_deviation(info, lp, out.x))
-        live = hz.dP > 0
         if np.all(np.abs(exact - info.x_hat)[live] <= FIXED_POINT_TOL_HZ) or (
                 iterations >= FIXED_POINT_MAX_ITER):
             break
         x_hat = np.where(live & np.isfinite(exact), exact, info.x_hat)
+        points = None
 
-    result = _make_result(case, lp, info, out, relax)
+    result = _make_result(case, lp, info, out, relax, points)
     result.iterations = iterations
     t_price = _attach_prices(result, lp, info, out)
     t_build += t_price[0]
@@ -172,8 +184,9 @@ def model_prediction(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
 
 
 def _make_result(case: Case, lp: LinearProgram, info: ModelInfo, out: Outcome,
-                 relax: bool) -> Result:
-    points = exact_points(info, lp, out.x)
+                 relax: bool, points: BatchPoints | None = None) -> Result:
+    if points is None:
+        points = exact_points(info, lp, out.x)
     dev_model, flow_model = model_prediction(lp, info, out.x)
     dev_exact = np.abs(points.deviation_hz)
     flows_exact = points.flow_after_mw
@@ -212,6 +225,7 @@ def _attach_prices(result: Result, lp: LinearProgram, info: ModelInfo, out: Outc
     if lp.is_mip:
         o = solve_highs(_fixed_lp(lp, out.x), want_duals=True)
     extra = (o.emit_time_s, o.solve_time_s) if o is not out else (0.0, 0.0)
+    result.prices = area_prices(info, lp, out.x, o.row_dual)
     if o.row_dual is None:
         return extra
     hz = info.hz
@@ -236,6 +250,45 @@ def _attach_prices(result: Result, lp: LinearProgram, info: ModelInfo, out: Outc
     return extra
 
 
+# Up room (MW) below which a provider counts as full when looking for the next MW's holder.
+ROOM_TOL_MW = 1e-6
+
+
+def area_prices(info: ModelInfo, lp: LinearProgram, x: np.ndarray,
+                row_dual: np.ndarray | None) -> pd.DataFrame:
+    """Per area (and period) prices for analysts (docs/formulation.md, "Prices for analysts"):
+      reserve_price_per_mw_h: dual of the area's own-reserve row / h_t (the re-optimised cost
+        of one more MW of requirement, integers fixed); 0 where the area has no requirement;
+      next_mw_up_cost_per_mw_h, next_mw_up_unit: the cheapest provider of the area that takes
+        part in that period and has up room left, i.e. the cost per hour of holding one more MW
+        of up headroom in the area with every gain and all other headroom unchanged (empty:
+        no such provider)."""
+    hz, case = info.hz, info.case
+    T, A = hz.own.shape
+    reserve = np.zeros((T, A)) if row_dual is not None else np.full((T, A), np.nan)
+    if row_dual is not None and "own_reserve" in lp.row_blocks:
+        ta, aa = np.nonzero(hz.own > 0)
+        reserve[ta, aa] = row_dual[lp.row_blocks["own_reserve"].slice] / hz.hours[ta]
+    gain, r_up, _ = period_values(lp, info, x)
+    price = np.where((gain > 0) & (hz.R_up - r_up > ROOM_TOL_MW), hz.price_up, np.inf)  # (T, N)
+    best = np.full((T, A), np.inf)
+    who = np.full((T, A), None, dtype=object)
+    names = case.units["unit"].to_numpy(object)
+    for a in range(A):  # a handful of areas; everything inside is vectorised over (T, units)
+        members = np.nonzero(hz.area == a)[0]
+        if len(members):
+            k = np.argmin(price[:, members], axis=1)
+            best[:, a] = price[np.arange(T), members[k]]
+            who[:, a] = np.where(np.isfinite(best[:, a]), names[members[k]], None)
+    out = {"area": np.tile(case.areas["area"].to_numpy(object), T)}
+    if case.is_horizon:
+        out["period"] = np.repeat(np.array(case.periods, dtype=object), A)
+    out["reserve_price_per_mw_h"] = np.where(np.abs(reserve) < 1e-9, 0.0, reserve).reshape(-1)
+    out["next_mw_up_cost_per_mw_h"] = np.where(np.isfinite(best), best, np.nan).reshape(-1)
+    out["next_mw_up_unit"] = who.reshape(-1)
+    return pd.DataFrame(out)
+
+
 def _fixed_lp(lp: LinearProgram, x: np.ndarray) -> LinearProgram:
     from copy import copy
 
@@ -252,10 +305,12 @@ def _fixed_lp(lp: LinearProgram, x: np.ndarray) -> LinearProgram:
 
 
 # ------------------------------------------------------------------ infeasibility
-def diagnose(case: Case, hz: Horizon | None = None) -> InfeasibleError:
+def diagnose(case: Case, hz: Horizon | None = None, extend=None) -> InfeasibleError:
     """Re-solve with penalised slacks on every limit family and report the smallest relaxation
     that makes the case feasible, in engineering terms (recomputed independently)."""
     lp, info = build_model(case, elastic=True, hz=hz)
+    if extend is not None:
+        extend(lp, info)
     hz = info.hz
     out = solve_program(lp, engine="highspy")
     if out.x is None:
