@@ -86,6 +86,10 @@ def cmd_solve(args) -> int:
     out_dir = Path(args.out) if args.out else None
     if out_dir is not None and out_dir.is_dir() and any(out_dir.iterdir()) and not args.force:
         raise _OutputBusy(out_dir)
+    if getattr(args, "report", False) and out_dir is None:
+        print("error: --report needs --out DIR (the report is written next to the results)",
+              file=sys.stderr)
+        return EXIT_INPUT
     case = load_case(args.case)
     _warn(case, args.quiet)
     try:
@@ -94,13 +98,27 @@ def cmd_solve(args) -> int:
     except InfeasibleError as exc:
         if out_dir is not None and exc.diagnosis is not None:
             _write_diagnosis(exc, out_dir, args.force)
+            if getattr(args, "report", False):
+                path = _solve_report(out_dir, args)
+                if not args.quiet:
+                    print(f"wrote {path}", file=sys.stderr)
         raise
+    report = None
     if out_dir is not None:
         result.write(out_dir, force=args.force)
+        report = _solve_report(out_dir, args) if getattr(args, "report", False) else None
     result.timings_s["total"] = time.perf_counter() - t0
     if not args.quiet:
         _print_result(result, out_dir)
+        if report is not None:
+            print(f"wrote {report}")
     return EXIT_OK
+
+
+def _solve_report(out_dir: Path, args) -> Path:
+    from .report import build_report
+
+    return build_report(out_dir, case_dir=args.case)
 
 
 class _OutputBusy(OptreserveError):
@@ -197,6 +215,120 @@ def cmd_generate(args) -> int:
     return EXIT_OK
 
 
+# ------------------------------------------------------------------ report
+def cmd_report(args) -> int:
+    from .report import build_report
+
+    path = build_report(args.result, case_dir=args.case)
+    if not args.quiet:
+        print(f"wrote {path}")
+        print(CAUTION)
+    return EXIT_OK
+
+
+def _add_report_parser(sub) -> None:
+    r = sub.add_parser("report", help="write a self-contained HTML report of a result folder",
+                       description="Write report.html into a result folder: case summary, "
+                                   "cost and prices, droop and headroom per unit, droop "
+                                   "characteristics, settled frequency and link loading per "
+                                   "event, horizon heat maps and any simulation plots. One "
+                                   "file, no external assets; it opens offline.")
+    r.add_argument("result", metavar="RESULT_DIR", help="folder written by solve --out")
+    r.add_argument("--case", metavar="DIR", help="the case folder the result was solved from "
+                   "(adds dead bands, load self-regulation and the case settings)")
+    r.add_argument("--quiet", action="store_true", help="print nothing on success")
+    r.set_defaults(func=cmd_report)
+
+
+# ------------------------------------------------------------------ retune
+def cmd_retune(args) -> int:
+    from .retune import retune
+
+    out_dir = Path(args.out) if args.out else None
+    if out_dir is not None and out_dir.is_dir() and any(out_dir.iterdir()) and not args.force:
+        raise _OutputBusy(out_dir)
+    case = load_case(args.case)
+    _warn(case, args.quiet)
+    keep = tuple(u.strip() for u in (args.keep or "").split(",") if u.strip())
+    try:
+        prop = retune(case, max_changes=args.max_changes, keep=keep,
+                      survive_provider_loss=args.survive_provider_loss,
+                      reduce_cost=args.reduce_cost, engine=args.engine,
+                      time_limit=args.time_limit, mip_gap=args.mip_gap)
+    except InfeasibleError as exc:
+        if out_dir is not None and exc.diagnosis is not None:
+            _write_diagnosis(exc, out_dir, args.force)
+        raise
+    if out_dir is not None:
+        prop.write(out_dir, force=args.force)
+    if args.quiet:
+        return EXIT_OK
+    if prop.already_safe:
+        print("today's settings already meet every limit"
+              + (": no change proposed" if prop.changed.empty else
+                 "; cost-saving changes proposed (--reduce-cost)"))
+    else:
+        print("today's settings break these limits:")
+        for v in prop.violations_before[:12]:
+            print(f"  {v}")
+        if len(prop.violations_before) > 12:
+            print(f"  ... and {len(prop.violations_before) - 12} more")
+    ch = prop.changed
+    if len(ch):
+        rows = [[str(r.unit), str(r.area), _pct(r.droop_now_pct), _pct(r.droop_proposed_pct),
+                 str(r.change), str(r.reason)] for r in ch.itertuples()]
+        print(f"{len(ch)} unit(s) to change, total droop change "
+              f"{prop.proposal['droop_change_pct'].sum():.2f} percentage points:")
+        print(_table(["unit", "area", "droop now %", "proposed %", "change", "reason"], rows,
+                     {2, 3}))
+    ba = prop.before_after
+    rows = [[str(r.event), f"{r.settled_frequency_before_hz:.4f}",
+             f"{r.settled_frequency_after_hz:.4f}", f"{r.margin_before_hz * 1000:.1f}",
+             f"{r.margin_after_hz * 1000:.1f}"]
+            + ([f"{r.loading_before_pct:.1f}", f"{r.loading_after_pct:.1f}"]
+               if "loading_before_pct" in ba.columns else [])
+            for r in ba.itertuples()]
+    head = ["event", "before Hz", "after Hz", "margin before mHz", "margin after mHz"] + (
+        ["worst link before %", "after %"] if "loading_before_pct" in ba.columns else [])
+    print(_table(head, rows, set(range(1, len(head)))))
+    print(f"headroom cost per hour: before {prop.cost_before_per_h:.2f}, after "
+          f"{prop.cost_after_per_h:.2f}")
+    if out_dir is not None:
+        print(f"wrote {out_dir}: proposal.csv before_after.csv retune.json and the allocation "
+              "files")
+    print(CAUTION)
+    return EXIT_OK
+
+
+def _pct(v) -> str:
+    return "off" if v != v else f"{v:g}"
+
+
+def _add_retune_parser(sub) -> None:
+    r = sub.add_parser("retune", help="propose the fewest droop changes that meet the limits",
+                       description="From today's settings (droop_now_pct), propose droop "
+                                   "settings inside bands and steps that meet every limit "
+                                   "with, in order, the fewest units changed, the least total "
+                                   "droop change and the least headroom cost; each change "
+                                   "comes with the limit that needs it.")
+    r.add_argument("case", metavar="CASE", help="case folder")
+    r.add_argument("--out", metavar="DIR", help="folder for proposal.csv, before_after.csv, "
+                   "retune.json and the allocation files")
+    r.add_argument("--force", action="store_true", help="write into a non-empty --out folder")
+    r.add_argument("--max-changes", type=int, metavar="N", help="change at most N units")
+    r.add_argument("--keep", metavar="UNIT,...", help="units whose setting must not change")
+    r.add_argument("--survive-provider-loss", action="store_true",
+                   help="every limit must also hold with any one reserve provider unavailable")
+    r.add_argument("--reduce-cost", action="store_true",
+                   help="propose cost-saving changes even when today's settings are safe")
+    r.add_argument("--engine", choices=["auto", "pyomo", "highspy"], default="auto",
+                   help="how HiGHS receives the model (default auto)")
+    r.add_argument("--time-limit", type=float, metavar="S", help="solver time limit per stage")
+    r.add_argument("--mip-gap", type=float, metavar="G", help="relative MIP gap")
+    r.add_argument("--quiet", action="store_true", help="print nothing on success")
+    r.set_defaults(func=cmd_retune)
+
+
 # ------------------------------------------------------------------ entry point
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
@@ -234,6 +366,8 @@ def build_parser() -> argparse.ArgumentParser:
                    "participation or droop steps)")
     s.add_argument("--verbose", action="store_true", help="show the HiGHS log")
     s.add_argument("--quiet", action="store_true", help="print nothing on success")
+    s.add_argument("--report", action="store_true", help="also write report.html into --out "
+                   "(see the report command)")
     s.set_defaults(func=cmd_solve)
 
     g = sub.add_parser("generate", help="write a synthetic day-ahead case",
@@ -252,6 +386,8 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--force", action="store_true", help="write into a non-empty folder")
     g.add_argument("--quiet", action="store_true", help="print nothing on success")
     g.set_defaults(func=cmd_generate)
+    _add_report_parser(sub)
+    _add_retune_parser(sub)
     return p
 
 
