@@ -5,8 +5,9 @@ from __future__ import annotations
 
 import os
 import sys
+import tempfile
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -29,6 +30,7 @@ class Outcome:
     row_dual: np.ndarray | None = None
     message: str = ""
     emit_time_s: float = 0.0  # handing the model to HiGHS (bulk load or Pyomo build)
+    warnings: list = field(default_factory=list)  # HiGHS's own warnings, passed on
 
 
 def highs_version() -> str:
@@ -57,8 +59,13 @@ def new_highs():
     return h
 
 
-def _options(h, time_limit, mip_gap, verbose):
-    h.setOptionValue("output_flag", bool(verbose))
+def _options(h, time_limit, mip_gap, verbose, log_file=None):
+    # the log always goes to a file so that HiGHS's warnings can be passed on to the user;
+    # it reaches the console only with --verbose
+    h.setOptionValue("output_flag", True)
+    h.setOptionValue("log_to_console", bool(verbose))
+    if log_file is not None:
+        h.setOptionValue("log_file", str(log_file))
     h.setOptionValue("random_seed", 0)
     if time_limit is not None:
         h.setOptionValue("time_limit", float(time_limit))
@@ -73,7 +80,9 @@ def solve_highs(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
 
     t0 = time.perf_counter()
     h = new_highs()
-    _options(h, time_limit, mip_gap, verbose)
+    log = tempfile.NamedTemporaryFile(prefix="optreserve-highs-", suffix=".log", delete=False)
+    log.close()
+    _options(h, time_limit, mip_gap, verbose, log.name)
     A = lp.A.tocsc()
     integrality = lp.integer.astype(np.int32)
     # the array overload copies numpy buffers straight into HiGHS (format 1 = column-wise,
@@ -85,10 +94,28 @@ def solve_highs(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
             A.indices.astype(np.int32), np.ascontiguousarray(A.data, dtype=float), integrality]
     h.passModel(*args)
     emit = time.perf_counter() - t0
-    h.run()
-    out = _outcome_from_highs(h, lp, "highspy", want_duals)
+    try:
+        h.run()
+        out = _outcome_from_highs(h, lp, "highspy", want_duals)
+    finally:
+        warnings = solver_warnings(log.name)
+        os.unlink(log.name)
     out.emit_time_s = emit
+    out.warnings = warnings
     return out
+
+
+def solver_warnings(path) -> list[str]:
+    """HiGHS's own WARNING lines from its log (numerical trouble, scaling, bounds)."""
+    try:
+        text = open(path, encoding="utf-8", errors="replace").read()
+    except OSError:
+        return []
+    seen = []
+    for ln in text.splitlines():
+        if "WARNING" in ln.upper() and ln.strip() not in seen:
+            seen.append(ln.strip())
+    return seen[:20]
 
 
 def _outcome_from_highs(h, lp, engine, want_duals) -> Outcome:
@@ -143,8 +170,15 @@ def solve_pyomo(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
         kwargs["time_limit"] = float(time_limit)
     if mip_gap is not None:
         kwargs["rel_gap"] = float(mip_gap)
+    log = tempfile.NamedTemporaryFile(prefix="optreserve-highs-", suffix=".log", delete=False)
+    log.close()
+    kwargs["solver_options"] = {"log_file": log.name, "random_seed": 0}
     t1 = time.perf_counter()
-    res = opt.solve(m, **kwargs)
+    try:
+        res = opt.solve(m, **kwargs)
+    finally:
+        warnings = solver_warnings(log.name)
+        os.unlink(log.name)
     h = opt._solver_model  # the highspy object Pyomo drove
     out = _outcome_from_highs(h, lp, "pyomo", want_duals=False)
     # Pyomo's hand-over to HiGHS counts as building; HiGHS's own run time as solving
@@ -157,6 +191,7 @@ def solve_pyomo(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
             duals = res.solution_loader.get_duals()
             out.row_dual = np.array([duals.get(m.rows[i], 0.0) for i in range(lp.n_rows)])
     out.emit_time_s = emit
+    out.warnings = warnings
     return out
 
 

@@ -49,6 +49,7 @@ class Result:
     relaxed: bool = False
     change_penalty_total: float = 0.0
     objective_total: float | None = None
+    solver_warnings: list = field(default_factory=list)
     # per area (and period): reserve_price_per_mw_h, next_mw_up_cost_per_mw_h (solve.area_prices)
     prices: pd.DataFrame | None = None
     # further files written with the result: name -> DataFrame (CSV) or dict (JSON)
@@ -171,6 +172,7 @@ class Result:
             "binding_event_instances": int(ev["binding"].sum()),
             "verification": {k: _num(v) for k, v in self.verification.items()},
             "dead_band_iterations": self.iterations,
+            "solver_warnings": list(self.solver_warnings),
             "timings_s": {k: round(float(v), 4) for k, v in self.timings_s.items()},
             "caution": CAUTION,
         }

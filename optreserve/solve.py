@@ -100,6 +100,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         points = None
 
     result = _make_result(case, lp, info, out, relax, points)
+    result.solver_warnings = list(dict.fromkeys(w for _, _, o in history for w in o.warnings))
     result.iterations = iterations
     t_price = _attach_prices(result, lp, info, out)
     t_build += t_price[0]
