@@ -58,6 +58,13 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         if extend is not None:
             extend(lp, info)
         t_build += time.perf_counter() - t0
+        if time_limit is not None:  # the dead-band iterations share one time budget
+            left = time_limit - (time.perf_counter() - t_start)
+            if history and left <= 0:
+                lp, info, out = history[-1]
+                points = None
+                break
+            opts["time_limit"] = max(left, 0.01)
         out = solve_program(lp, engine=engine, want_duals=not lp.is_mip, **opts)
         t_build += out.emit_time_s
         t_solve += out.solve_time_s
@@ -83,8 +90,14 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
             points = None
             break
         if out.x is None:
+            if history:  # a later dead-band iteration ran out of time: keep the last answer
+                lp, info, out = history[-1]
+                points = None
+                break
+            hint = (f"; no allocation found within the time limit of {time_limit:g} s: raise "
+                    "--time-limit" if out.status == "no_solution" else "")
             raise SolverError(f"HiGHS stopped without a usable allocation ({out.status}: "
-                              f"{out.message})")
+                              f"{out.message}){hint}")
         history.append((lp, info, out))
         points = exact_points(info, lp, out.x)
         exact = np.abs(points.deviation_hz)
