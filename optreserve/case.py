@@ -64,6 +64,7 @@ class Case:
     period_hours: tuple[float, ...] = ()
     series: dict = field(default_factory=dict)
     hold_periods: int | None = None  # droop fixed per block of N periods; None = whole horizon
+    co_optimise: bool = False  # [energy] co_optimise: outputs become decisions (energy price)
 
     # --- horizon ---
     @property

@@ -65,17 +65,19 @@ class UnitData:
     K_now: np.ndarray  # NaN where droop_now_pct not given
 
 
-def capability(case: Case, out, mn, up_cap, dn_cap, provides, need_up, need_dn):
+def capability(case: Case, room_up, room_dn, up_cap, dn_cap, provides, need_up, need_dn):
     """What each unit can give, broadcast over leading period axes: (K_hi, capable, R_up,
-    R_dn). need_up/need_dn say whether up/down headroom is required (scalars or (T, 1))."""
+    R_dn). room_up/room_dn: physical room above/below the output (for a dispatchable unit
+    under co-optimisation, its whole range). need_up/need_dn say whether up/down headroom is
+    required (scalars or (T, 1))."""
     u = case.units
     f_n = case.nominal_frequency_hz
     cap = u["capacity_mw"].to_numpy(float)
     d = u["deadband_mhz"].to_numpy(float) / 1000.0
     K_lo = cap / (u["droop_max_pct"].to_numpy(float) / 100.0 * f_n)
     K_band = cap / (u["droop_min_pct"].to_numpy(float) / 100.0 * f_n)
-    R_up = np.maximum(0.0, np.fmin(cap - out, np.where(np.isnan(up_cap), np.inf, up_cap)))
-    R_dn = np.maximum(0.0, np.fmin(out - mn, np.where(np.isnan(dn_cap), np.inf, dn_cap)))
+    R_up = np.maximum(0.0, np.fmin(room_up, np.where(np.isnan(up_cap), np.inf, up_cap)))
+    R_dn = np.maximum(0.0, np.fmin(room_dn, np.where(np.isnan(dn_cap), np.inf, dn_cap)))
     a_act = np.maximum(case.limits.full_activation_deviation_hz - d, 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
         lim_up = np.where(need_up & (a_act > 0), R_up / a_act, np.inf)
@@ -92,8 +94,9 @@ def unit_data(case: Case, need_up: bool, need_dn: bool) -> UnitData:
     f_n = case.nominal_frequency_hz
     cap = u["capacity_mw"].to_numpy(float)
     d = u["deadband_mhz"].to_numpy(float) / 1000.0
+    out, mn = u["output_mw"].to_numpy(float), u["min_output_mw"].to_numpy(float)
     K_hi, capable, R_up, R_dn = capability(
-        case, u["output_mw"].to_numpy(float), u["min_output_mw"].to_numpy(float),
+        case, cap - out, out - mn,
         u["reserve_up_max_mw"].to_numpy(float), u["reserve_down_max_mw"].to_numpy(float),
         u["provides"].to_numpy(bool), need_up, need_dn)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -154,6 +157,15 @@ class Horizon:
     # droop blocks
     K_hi_b: np.ndarray  # (B, N)
     capable_b: np.ndarray  # (B, N)
+    # energy-reserve co-optimisation ([energy] co_optimise): outputs become decisions
+    co_opt: bool = False
+    disp: np.ndarray | None = None  # (N,) dispatchable units (an energy price is given)
+    e_price: np.ndarray | None = None  # (T, N) energy price per MWh
+    cap: np.ndarray | None = None  # (N,)
+    mn: np.ndarray | None = None  # (T, N) minimum output
+    out: np.ndarray | None = None  # (T, N) output (the dispatch, once solved)
+    load: np.ndarray | None = None  # (T, A)
+    dP_var: np.ndarray | None = None  # (M,) unit whose (dispatched) output is the event size
 
     @property
     def N(self) -> int:
@@ -179,8 +191,17 @@ def prepare(case: Case) -> Horizon:
     need_up = np.bincount(inst_t, weights=(sigma > 0) & (dP > 0), minlength=T) > 0
     need_dn = np.bincount(inst_t, weights=(sigma < 0) & (dP > 0), minlength=T) > 0
     um = case.unit_matrix
+    cap = case.units["capacity_mw"].to_numpy(float)
+    out_t, mn_t = um("output_mw").astype(float), um("min_output_mw").astype(float)
+    e_price = um("energy_price_per_mwh").astype(float) if "energy_price_per_mwh" in \
+        case.units.columns else np.full((T, N), np.nan)
+    disp = np.zeros(N, dtype=bool)
+    if case.co_optimise and "energy_price_per_mwh" in case.units.columns:
+        disp = np.isfinite(case.units["energy_price_per_mwh"].to_numpy(float))
+    room_up = np.where(disp, cap - mn_t, cap - out_t)
+    room_dn = np.where(disp, cap - mn_t, out_t - mn_t)
     K_hi_t, avail, R_up, R_dn = capability(
-        case, um("output_mw").astype(float), um("min_output_mw").astype(float),
+        case, room_up, room_dn,
         um("reserve_up_max_mw").astype(float), um("reserve_down_max_mw").astype(float),
         um("provides").astype(bool), need_up[:, None], need_dn[:, None])
     u0 = unit_data(case, bool(need_up.any()), bool(need_dn.any()))
@@ -218,7 +239,18 @@ def prepare(case: Case) -> Horizon:
         dP=dP, sigma=sigma, inst_area=ev_area[e], trip=ev_trip[e],
         absent=np.full(len(e), -1, dtype=np.int64), inst_event=e.astype(np.int64),
         K_hi_b=K_hi_b, capable_b=capable_b,
+        co_opt=bool(disp.any()), disp=disp, e_price=np.nan_to_num(e_price), cap=cap,
+        mn=mn_t, out=out_t, load=case.area_matrix("load_mw").astype(float),
+        dP_var=np.where(_from_output(case, e) & (ev_trip[e] >= 0) & disp[np.maximum(
+            ev_trip[e], 0)], ev_trip[e], -1).astype(np.int64),
     )
+
+
+def _from_output(case: Case, e: np.ndarray) -> np.ndarray:
+    ev = case.events
+    if "size_from_output" not in ev.columns:
+        return np.zeros(len(e), dtype=bool)
+    return ev["size_from_output"].to_numpy(bool)[e]
 
 
 def system_inertia(case: Case, inst_t: np.ndarray, trip: np.ndarray) -> np.ndarray:
@@ -321,6 +353,7 @@ def build_model(case: Case, x_hat: np.ndarray | None = None, elastic: bool = Fal
     n_g = len(first)
     G = lp.add_vars("G", n_g * n_a * n_k, 0.0, np.inf)
 
+    P = _rows_dispatch(lp, hz, r_up, r_dn, elastic) if hz.co_opt else None
     _rows_aggregate(lp, hz, K, G, first, unit_class, n_a, n_k)
     tt, ii = np.nonzero(hz.avail & hz.need_up[:, None])
     _rows_headroom(lp, "headroom_up", hz, K, r_up, tt, ii)
@@ -329,10 +362,12 @@ def build_model(case: Case, x_hat: np.ndarray | None = None, elastic: bool = Fal
     if (hz.own > 0).any():
         _rows_own_reserve(lp, hz, r_up, part_cols, part_of, elastic)
     ginfo = (group_of_t, n_a, n_k, classes)
-    _rows_settled(lp, hz, K, G, ginfo, F_model, elastic)
+    _rows_settled(lp, hz, K, G, ginfo, F_model, elastic, P)
     if case.limits.max_nadir_deviation_hz is not None:
         _rows_nadir(lp, case, hz, r_up, r_dn, elastic)
-    if len(case.links):
+    if len(case.links) and hz.co_opt:
+        _rows_flows_dispatch(lp, hz, K, G, ginfo, x_hat, elastic, P)
+    elif len(case.links):
         _rows_flows(lp, hz, K, G, ginfo, x_hat, elastic)
     change_cols = _rows_change(lp, case, hz, K, st, relax)
 
@@ -421,8 +456,9 @@ def _removed(hz: Horizon, inst):
     return np.concatenate(out_m), np.concatenate(out_j)
 
 
-def _rows_settled(lp, hz: Horizon, K, G, ginfo, F_m, elastic):
-    """sum_i K_i (F - d_i)^+ + F sum_a D_a >= |dP| per event instance (tripped unit out)."""
+def _rows_settled(lp, hz: Horizon, K, G, ginfo, F_m, elastic, P=None):
+    """sum_i K_i (F - d_i)^+ + F sum_a D_a >= |dP| per event instance (tripped unit out);
+    under co-optimisation a trip's dP is the tripped unit's dispatched output p_tj."""
     group_of_t, n_a, n_k, classes = ginfo
     M, N = len(hz.dP), hz.N
     w = np.tile(np.maximum(F_m - classes, 0.0), n_a)  # per (a, k)
@@ -434,11 +470,18 @@ def _rows_settled(lp, hz: Horizon, K, G, ginfo, F_m, elastic):
     rows = np.r_[rows, te]
     cols = np.r_[cols, K.idx(hz.block[hz.inst_t[te]] * N + j)]
     vals = np.r_[vals, -np.maximum(F_m - hz.d_hz[j], 0.0)]
+    lo = hz.dP - F_m * hz.D_a[hz.inst_t].sum(axis=1)
+    if P is not None:
+        mv = np.nonzero(hz.dP_var >= 0)[0]
+        rows = np.r_[rows, mv]
+        cols = np.r_[cols, P[hz.inst_t[mv], hz.dP_var[mv]]]
+        vals = np.r_[vals, -np.ones(len(mv))]
+        lo[mv] = -F_m * hz.D_a[hz.inst_t[mv]].sum(axis=1)
     if elastic:
         S = lp.add_vars("slack_settled", M, 0.0, np.inf, cost=ELASTIC_PENALTY)
         rows, cols, vals = np.r_[rows, np.arange(M)], np.r_[cols, S.idx()], np.r_[
             vals, np.ones(M)]
-    lp.add_rows("settled", M, rows, cols, vals, lo=hz.dP - F_m * hz.D_a[hz.inst_t].sum(axis=1))
+    lp.add_rows("settled", M, rows, cols, vals, lo=lo)
 
 
 def nadir_ramp_needed(case: Case, hz: Horizon) -> np.ndarray:
@@ -447,9 +490,12 @@ def nadir_ramp_needed(case: Case, hz: Horizon) -> np.ndarray:
     response equals dP, at t* = dP / rho, with |df| = f_n dP^2 / (4 H rho) (ramp model;
     docs/formulation.md). |df| <= N  <=>  rho >= f_n dP^2 / (4 H N)."""
     N_max = case.limits.max_nadir_deviation_hz
+    dP = hz.dP
+    if hz.co_opt and hz.dP_var is not None:  # a dispatched trip: its capacity, to stay linear
+        dP = np.where(hz.dP_var >= 0, hz.cap[np.maximum(hz.dP_var, 0)], dP)
     with np.errstate(divide="ignore", invalid="ignore"):
-        need = case.nominal_frequency_hz * hz.dP ** 2 / (4.0 * hz.H_sys * N_max)
-    return np.where(hz.dP > 0, need, 0.0)
+        need = case.nominal_frequency_hz * dP ** 2 / (4.0 * hz.H_sys * N_max)
+    return np.where(dP > 0, need, 0.0)
 
 
 def _rows_nadir(lp, case, hz: Horizon, r_up, r_dn, elastic):
@@ -544,6 +590,123 @@ def _rows_flows(lp, hz: Horizon, K, G, ginfo, x_hat, elastic):
             lp.add_rows(name, ne * n_l, rows, cols, vals, hi=rhs)
         else:
             lp.add_rows(name, ne * n_l, rows, cols, vals, lo=rhs)
+
+
+def _rows_dispatch(lp, hz: Horizon, r_up, r_dn, elastic) -> np.ndarray:
+    """Energy-reserve co-optimisation: output p_ti of dispatchable units between minimum
+    output and capacity at its energy price; headroom competes with energy
+    (r_up + p <= capacity, p - r_dn >= minimum); the system balances in every period and
+    pre-event link flows F0 = Phi (P_a - L_a) stay within limits. Returns the column of p
+    per (t, i) (-1 where the output is fixed)."""
+    N, T = hz.N, hz.T
+    n_a = hz.load.shape[1]
+    tt, ii = np.nonzero(np.broadcast_to(hz.disp, (T, N)))
+    nd = len(tt)
+    P = lp.add_vars("p", nd, hz.mn[tt, ii], hz.cap[ii], cost=hz.e_price[tt, ii] * hz.hours[tt])
+    pcol = np.full((T, N), -1, dtype=np.int64)
+    pcol[tt, ii] = P.idx()
+    k = np.arange(nd)
+    one = np.ones(nd)
+    lp.add_rows("room_up", nd, np.r_[k, k], np.r_[r_up.idx(tt * N + ii), P.idx()],
+                np.r_[one, one], hi=hz.cap[ii])
+    lp.add_rows("room_dn", nd, np.r_[k, k], np.r_[P.idx(), r_dn.idx(tt * N + ii)],
+                np.r_[one, -one], lo=hz.mn[tt, ii])
+    PA = lp.add_vars("p_area", T * n_a, -np.inf, np.inf)
+    lp.add_rows("p_area_def", T * n_a, np.r_[np.arange(T * n_a), tt * n_a + hz.area[ii]],
+                np.r_[PA.idx(), P.idx()], np.r_[np.ones(T * n_a), -one], lo=0.0, hi=0.0)
+    fixed_a = fixed_area_output(hz)
+    rhs = hz.load.sum(axis=1) - fixed_a.sum(axis=1)
+    rows, cols, vals = np.repeat(np.arange(T), n_a), PA.idx(), np.ones(T * n_a)
+    if elastic:  # unserved or spilled energy
+        S = lp.add_vars("slack_balance", 2 * T, 0.0, np.inf, cost=ELASTIC_PENALTY)
+        rows = np.r_[rows, np.arange(T), np.arange(T)]
+        cols = np.r_[cols, S.idx()]
+        vals = np.r_[vals, np.ones(T), -np.ones(T)]
+    lp.add_rows("balance", T, rows, cols, vals, lo=rhs, hi=rhs)
+    L = hz.F0.shape[1]
+    if L:
+        W = hz.Phi / hz.Fmax[:, :, None]  # (T, L, A)
+        c = (hz.Phi * (fixed_a - hz.load)[:, None, :]).sum(axis=2)  # (T, L)
+        rows = np.repeat(np.arange(T * L), n_a)
+        cols = PA.idx((np.arange(T)[:, None, None] * n_a + np.arange(n_a)[None, None, :]
+                       + 0 * np.arange(L)[None, :, None]).reshape(-1))
+        vals = W.reshape(-1)
+        if elastic:
+            S = lp.add_vars("slack_pre_flow", 2 * T * L, 0.0, np.inf, cost=ELASTIC_PENALTY)
+            rows = np.r_[rows, np.arange(T * L), np.arange(T * L)]
+            cols = np.r_[cols, S.idx()]
+            vals = np.r_[vals, -np.ones(T * L), np.ones(T * L)]
+        lp.add_rows("pre_flow", T * L, rows, cols, vals,
+                    lo=((-hz.Fmax - c) / hz.Fmax).reshape(-1),
+                    hi=((hz.Fmax - c) / hz.Fmax).reshape(-1))
+    return pcol
+
+
+def fixed_area_output(hz: Horizon) -> np.ndarray:
+    """(T, A) output of the units whose output is not a decision."""
+    fixed = np.where(hz.disp[None, :], 0.0, hz.out)
+    n_a = hz.load.shape[1]
+    onehot = np.zeros((hz.N, n_a))
+    onehot[np.arange(hz.N), hz.area] = 1.0
+    return fixed @ onehot
+
+
+def _rows_flows_dispatch(lp, hz: Horizon, K, G, ginfo, x_hat, elastic, pcol):
+    """Post-event link limits when outputs are decisions. The pre-event flow F0 = Phi (P - L)
+    is then a variable, so the multiply-by-beta' form would be bilinear; instead the area
+    responses are written at the settled guess x:  F0 + s (x sum_a Phi_la beta'_a
+    - dP Phi_l,ae)  within +-Fmax, linear in the gains, outputs and dP, and exact once the
+    guess equals the independently computed settled deviation (the same fixed point as for
+    dead bands)."""
+    group_of_t, n_a, n_k, classes = ginfo
+    N = hz.N
+    L = hz.F0.shape[1]
+    live = np.nonzero((hz.dP > 0) | (hz.dP_var >= 0))[0]
+    ne = len(live)
+    t = hz.inst_t[live]
+    c = effective_factor(classes, x_hat[live])
+    g = group_of_t[t]
+    gcols = G.idx((g[:, None] * n_a * n_k + np.arange(n_a * n_k)[None, :]))
+    te_abs, j = _removed(hz, live)
+    te = np.searchsorted(live, te_abs)
+    cj = np.clip(1.0 - hz.d_hz[j] / np.where(x_hat[te_abs] > 0, x_hat[te_abs], np.inf), 0, 1)
+    Bv = lp.add_vars("beta", ne * n_a, -np.inf, np.inf)
+    rows = np.r_[np.arange(ne * n_a), np.repeat(np.arange(ne * n_a), n_k), te * n_a + hz.area[j]]
+    cols = np.r_[Bv.idx(), gcols.reshape(-1), K.idx(hz.block[hz.inst_t[te_abs]] * N + j)]
+    vals = np.r_[np.ones(ne * n_a), -np.repeat(c, n_a, axis=0).reshape(-1), cj]
+    lp.add_rows("beta_def", ne * n_a, rows, cols, vals, lo=0.0, hi=0.0)
+    PA = lp.var_blocks["p_area"]
+    Phi = hz.Phi[t]  # (E, L, A)
+    Fmax = hz.Fmax[t]  # (E, L)
+    sig = hz.sigma[live]
+    xh = x_hat[live]
+    ae = hz.inst_area[live]
+    Phi_e = np.take_along_axis(Phi, ae[:, None, None], axis=2)[:, :, 0]  # (E, L)
+    fixed_a = fixed_area_output(hz)[t]
+    c0 = (Phi * (fixed_a - hz.load[t])[:, None, :]).sum(axis=2)  # (E, L)
+    damp = (Phi * hz.D_a[t][:, None, :]).sum(axis=2)  # (E, L)
+    const = c0 + sig[:, None] * xh[:, None] * damp  # moves to the bounds
+    const_dp = -sig[:, None] * Phi_e * np.where(hz.dP_var[live] >= 0, 0.0, hz.dP[live])[:, None]
+    k = np.arange(ne * L)
+    rows = np.r_[np.repeat(k, n_a), np.repeat(k, n_a)]
+    cols = np.r_[PA.idx((t[:, None, None] * n_a + np.arange(n_a)[None, None, :]
+                         + 0 * np.arange(L)[None, :, None]).reshape(-1)),
+                 np.repeat(Bv.idx().reshape(ne, n_a), L, axis=0).reshape(-1)]
+    vals = np.r_[(Phi / Fmax[:, :, None]).reshape(-1),
+                 (sig[:, None, None] * xh[:, None, None] * Phi / Fmax[:, :, None]).reshape(-1)]
+    mv = np.nonzero(hz.dP_var[live] >= 0)[0]
+    if len(mv):
+        rows = np.r_[rows, (mv[:, None] * L + np.arange(L)[None, :]).reshape(-1)]
+        cols = np.r_[cols, np.repeat(pcol[t[mv], hz.dP_var[live][mv]], L)]
+        vals = np.r_[vals, (-sig[mv, None] * Phi_e[mv] / Fmax[mv]).reshape(-1)]
+    shift = ((const + const_dp) / Fmax).reshape(-1)
+    if elastic:
+        S = lp.add_vars("slack_flow_hi", ne * L, 0.0, np.inf, cost=ELASTIC_PENALTY)
+        S2 = lp.add_vars("slack_flow_lo", ne * L, 0.0, np.inf, cost=ELASTIC_PENALTY)
+        rows = np.r_[rows, k, k]
+        cols = np.r_[cols, S.idx(), S2.idx()]
+        vals = np.r_[vals, -np.ones(ne * L), np.ones(ne * L)]
+    lp.add_rows("flow_x", ne * L, rows, cols, vals, lo=-1.0 - shift, hi=1.0 - shift)
 
 
 def _rows_change(lp, case, hz: Horizon, K, st, relax):

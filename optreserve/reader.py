@@ -100,6 +100,7 @@ UNIT_COLS = [
     Col("provides", "bool", False, True),
     Col("inertia_s", "float", False, math.nan, check=_nonneg),
     Col("activation_time_s", "float", False, math.nan, check=_positive),
+    Col("energy_price_per_mwh", "float", False, math.nan),
 ]
 AREA_COLS = [
     Col("area", "id", True),
@@ -318,6 +319,7 @@ _TOML_SCHEMA: dict[str, dict[str, str]] = {
               "hold_periods": "posint"},
     "horizon": {"period_hours": "pos"},
     "solver": {"time_limit_s": "pos", "mip_gap": "nonneg"},
+    "energy": {"co_optimise": "bool"},
 }
 
 
@@ -385,6 +387,10 @@ def _read_toml(path: Path, label: str, col: _Collector) -> dict[str, Any] | None
                     col.error(label, f"must be >= 0, got {v}", line, where)
                     continue
                 v = float(v)
+            elif kind == "bool":
+                if not isinstance(v, bool):
+                    col.error(label, f"must be true or false, got {v!r}", line, where)
+                    continue
             elif kind == "posint":
                 if isinstance(v, bool) or not isinstance(v, int) or v < 1:
                     col.error(label, f"must be a whole number >= 1, got {v!r}", line, where)
@@ -564,6 +570,7 @@ def load_case(path: str | Path) -> Case:
         period_hours=hours,
         series=series,
         hold_periods=settings.get("droop.hold_periods"),
+        co_optimise=bool(settings.get("energy.co_optimise", False)),
     )
     return case.replace(read_time_s=time.perf_counter() - t0)
 
@@ -573,6 +580,7 @@ SERIES = {"units": ("unit", UNIT_COLS), "areas": ("area", AREA_COLS),
           "links": ("link", LINK_COLS)}
 SERIES_COLS = {
     "units": {"output_mw", "min_output_mw", "reserve_up_max_mw", "reserve_down_max_mw",
+              "energy_price_per_mwh",
               "price_up_per_mw_h", "price_down_per_mw_h", "provides"},
     "areas": {"load_mw", "load_damping_pct_per_hz", "min_own_reserve_mw"},
     "links": {"limit_mw", "flow_mw", "reactance_pu"},

@@ -49,6 +49,8 @@ class Result:
     relaxed: bool = False
     change_penalty_total: float = 0.0
     objective_total: float | None = None
+    energy_cost: float | None = None  # co-optimisation only (over the horizon, or per hour)
+    reserve_cost: float | None = None
     solver_warnings: list = field(default_factory=list)
     # per area (and period): reserve_price_per_mw_h, next_mw_up_cost_per_mw_h (solve.area_prices)
     prices: pd.DataFrame | None = None
@@ -74,6 +76,11 @@ class Result:
             droop_b[info.steps_block[chosen], info.steps_unit[chosen]] = info.steps_pct[chosen]
         droop = droop_b[hz.block]  # (T, N)
         cost = hz.price_up * r_up + hz.price_dn * r_dn  # per hour, (T, N)
+        reserve_cost = float((cost * hz.hours[:, None]).sum())
+        energy = None
+        if hz.co_opt:  # co-optimised: each unit's cost also carries its energy
+            energy = np.where(hz.disp[None, :], hz.e_price * hz.out, 0.0)
+            cost = cost + energy
         alloc = {
             "unit": np.tile(u["unit"].to_numpy(object), T),
             "area": np.tile(u["area"].to_numpy(object), T),
@@ -88,6 +95,8 @@ class Result:
             "headroom_down_mw": r_dn.reshape(-1),
             "cost_per_h": cost.reshape(-1),
         })
+        if hz.co_opt:
+            alloc["output_mw"] = hz.out.reshape(-1)
         allocation = pd.DataFrame(alloc)
         M = len(hz.dP)
         ev = case.events
@@ -131,6 +140,9 @@ class Result:
                           "interface": out.engine},
                   verification=verification, relaxed=relax, change_penalty_total=pen)
         res.objective_total = total if horizon else None
+        if hz.co_opt:
+            res.energy_cost = float((energy * hz.hours[:, None]).sum())
+            res.reserve_cost = reserve_cost
         return res
 
     def set_event_prices(self, price_per_mw_h) -> None:
@@ -154,6 +166,8 @@ class Result:
             "periods": self.case.n_periods,
             "horizon_hours": _num(float(self.case.hours().sum())),
             "change_penalty": _num(self.change_penalty_total),
+            "energy_cost": _num(self.energy_cost),
+            "reserve_cost": _num(self.reserve_cost),
             "objective_with_penalty": _num((self.objective_total if self.objective_total
                                             is not None else self.objective_per_h)
                                            + self.change_penalty_total),
@@ -262,8 +276,9 @@ def write_table(df: pd.DataFrame, path: Path) -> None:
                          for x in v.tolist()])
     header = [str(c) for c in df.columns]
     special = re.compile(r'[,"\r\n]')
-    plain = not any(special.search(x) for c in [header] + [
-        col for col, k in zip(cols, df.columns) if df[k].dtype == object] for x in c)
+    text_cols = [col for col, k in zip(cols, df.columns)
+                 if not (df[k].dtype == bool or pd.api.types.is_float_dtype(df[k]))]
+    plain = not any(special.search(x) for c in [header] + text_cols for x in c)
     with open(path, "w", newline="", encoding="utf-8") as fh:
         if plain:  # nothing to quote: join directly (several times faster than csv.writer)
             fh.write(",".join(header) + "\n")

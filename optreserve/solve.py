@@ -98,10 +98,11 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
                     "--time-limit" if out.status == "no_solution" else "")
             raise SolverError(f"HiGHS stopped without a usable allocation ({out.status}: "
                               f"{out.message}){hint}")
+        info.hz = dispatch_view(info.hz, lp, out.x)
         history.append((lp, info, out))
         points = exact_points(info, lp, out.x)
         exact = np.abs(points.deviation_hz)
-        live = hz.dP > 0
+        live = info.hz.dP > 0
         if not _needs_fixed_point(info):
             # no row depends on the settled guess: the exact deviation is the model's own
             info.x_hat = np.where(live, exact, info.x_hat)
@@ -113,7 +114,10 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         points = None
 
     result = _make_result(case, lp, info, out, relax, points)
-    result.solver_warnings = list(dict.fromkeys(w for _, _, o in history for w in o.warnings))
+    # our own tie-break price on headroom (model.TIE_BREAK_PER_MW_H) makes HiGHS remark on
+    # "excessively small costs": that one is expected and not passed on
+    result.solver_warnings = list(dict.fromkeys(
+        w for _, _, o in history for w in o.warnings if "small costs" not in w))
     result.iterations = iterations
     t_price = _attach_prices(result, lp, info, out)
     t_build += t_price[0]
@@ -125,8 +129,28 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
 
 def _needs_fixed_point(info: ModelInfo) -> bool:
     hz = info.hz
-    return bool(len(info.case.links) and (hz.d_hz[hz.capable_b.any(axis=0)] > 0).any()
-                and (hz.dP > 0).any())
+    live = (hz.dP > 0).any() or (hz.co_opt and (hz.dP_var >= 0).any())
+    guessed = (hz.d_hz[hz.capable_b.any(axis=0)] > 0).any() or hz.co_opt
+    return bool(len(info.case.links) and guessed and live)
+
+
+def dispatch_view(hz: Horizon, lp: LinearProgram, x: np.ndarray) -> Horizon:
+    """Under co-optimisation: the stacked case at the dispatch found (outputs, pre-event flows
+    F0 = Phi (P_a - L_a), and trip sizes that follow the tripped unit's output)."""
+    if not hz.co_opt:
+        return hz
+    from dataclasses import replace
+
+    T, N = hz.T, hz.N
+    out = hz.out.copy()
+    tt, ii = np.nonzero(np.broadcast_to(hz.disp, (T, N)))
+    out[tt, ii] = np.round(lp.value(x, "p"), 6)  # 1 W: below it is solver round-off
+    onehot = np.zeros((N, hz.load.shape[1]))
+    onehot[np.arange(N), hz.area] = 1.0
+    F0 = np.einsum("tla,ta->tl", hz.Phi, out @ onehot - hz.load)
+    mv = hz.dP_var >= 0
+    size = np.where(mv, out[hz.inst_t, np.maximum(hz.dP_var, 0)], hz.sigma * hz.dP)
+    return replace(hz, out=out, F0=F0, dP=np.abs(size), sigma=np.where(size < 0, -1.0, 1.0))
 
 
 def period_values(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
@@ -138,6 +162,11 @@ def period_values(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
     gain = K[hz.block] * hz.avail
     r_up = lp.value(x, "r_up").reshape(T, N)
     r_dn = lp.value(x, "r_dn").reshape(T, N)
+    # the solver may leave headroom a hair (its feasibility tolerance) below what the droop
+    # needs at full activation: report the rule's value, not the round-off
+    need = gain * hz.a_act[None, :]
+    r_up = np.where(hz.need_up[:, None] & (need - r_up > 0) & (need - r_up < 1e-5), need, r_up)
+    r_dn = np.where(hz.need_dn[:, None] & (need - r_dn > 0) & (need - r_dn < 1e-5), need, r_dn)
     return gain, np.where(r_up > 1e-9, r_up, 0.0), np.where(r_dn > 1e-9, r_dn, 0.0)
 
 
@@ -258,10 +287,55 @@ def _attach_prices(result: Result, lp: LinearProgram, info: ModelInfo, out: Outc
         for name in ("flow_hi", "flow_lo"):
             yr = y[lp.row_blocks[name].slice].reshape(len(live), n_l)
             price[live] -= (yr * g).sum(axis=1)
+    if "flow_x" in lp.row_blocks:  # co-optimised flows: dP sits in the bounds of its rows
+        live = np.nonzero((hz.dP > 0) | (hz.dP_var >= 0))[0]
+        t = hz.inst_t[live]
+        Phi_e = np.take_along_axis(hz.Phi[t], hz.inst_area[live][:, None, None], axis=2)[
+            :, :, 0]
+        n_l = hz.F0.shape[1]
+        yr = y[lp.row_blocks["flow_x"].slice].reshape(len(live), n_l)
+        fixed_size = hz.dP_var[live] < 0
+        price[live] += np.where(fixed_size, (yr * hz.sigma[live][:, None] * Phi_e
+                                             / hz.Fmax[t]).sum(axis=1), 0.0)
     price = price / hz.hours[hz.inst_t]
     price[hz.dP == 0] = 0.0
     result.set_event_prices(np.where(np.abs(price) < 1e-9, 0.0, price))
+    if hz.co_opt:
+        result.extra_files["energy_prices.csv"] = energy_prices(info, lp, y)
     return extra
+
+
+def energy_prices(info: ModelInfo, lp: LinearProgram, y: np.ndarray) -> pd.DataFrame:
+    """Co-optimisation: the marginal cost of one more MWh of demand per area and period, by
+    the envelope theorem over every row whose bound moves with an area's load: the balance
+    (+1), the pre-event link limits and post-event flow rows (+Phi_la / Fmax through the
+    pre-event flow), and through load self-regulation D_a = load x damping the settled rows
+    (-F d_a) and the post-event flow rows (-s x Phi_la d_a / Fmax), d_a = damping % / 100."""
+    hz, case = info.hz, info.case
+    T, A = hz.load.shape
+    damp = case.area_matrix("load_damping_pct_per_hz").astype(float) / 100.0  # (T, A)
+    price = np.zeros((T, A))
+    price += y[lp.row_blocks["balance"].slice][:, None]
+    if "pre_flow" in lp.row_blocks:
+        L = hz.F0.shape[1]
+        yp = y[lp.row_blocks["pre_flow"].slice].reshape(T, L)
+        price += np.einsum("tl,tla->ta", yp / hz.Fmax, hz.Phi)
+    ys = y[lp.row_blocks["settled"].slice]
+    np.add.at(price, hz.inst_t, -(ys * info.F_model)[:, None] * damp[hz.inst_t])
+    if "flow_x" in lp.row_blocks:
+        live = np.nonzero((hz.dP > 0) | (hz.dP_var >= 0))[0]
+        t = hz.inst_t[live]
+        L = hz.F0.shape[1]
+        yf = y[lp.row_blocks["flow_x"].slice].reshape(len(live), L) / hz.Fmax[t]
+        d = np.einsum("ml,mla->ma", yf, hz.Phi[t])
+        d = d * (1.0 - hz.sigma[live][:, None] * info.x_hat[live][:, None] * damp[t])
+        np.add.at(price, t, d)
+    price = price / hz.hours[:, None]
+    out = {"area": np.tile(case.areas["area"].to_numpy(object), T)}
+    if case.is_horizon:
+        out["period"] = np.repeat(np.array(case.periods, dtype=object), A)
+    out["energy_price_per_mwh"] = np.where(np.abs(price) < 1e-9, 0.0, price).reshape(-1)
+    return pd.DataFrame(out)
 
 
 # Up room (MW) below which a provider counts as full when looking for the next MW's holder.
