@@ -103,6 +103,10 @@ def cmd_solve(args) -> int:
                 if not args.quiet:
                     print(f"wrote {path}", file=sys.stderr)
         raise
+    if not args.quiet:
+        for w in result.solver_warnings:
+            print(f"warning: HiGHS: {w}", file=sys.stderr)
+    comparison = _compare(case, result) if getattr(args, "compare", None) else None
     report = None
     if out_dir is not None:
         result.write(out_dir, force=args.force)
@@ -110,9 +114,22 @@ def cmd_solve(args) -> int:
     result.timings_s["total"] = time.perf_counter() - t0
     if not args.quiet:
         _print_result(result, out_dir)
+        if comparison is not None:
+            print("\n".join(comparison.lines()))
         if report is not None:
             print(f"wrote {report}")
     return EXIT_OK
+
+
+def _compare(case, result):
+    """--compare uniform: the uniform-droop policy against the optimum (compare.py); its
+    tables are written with the result."""
+    from .compare import compare_uniform
+
+    cmp = compare_uniform(case, result)
+    result.extra_files.update({"comparison.csv": cmp.summary, "comparison.json": cmp.to_json(),
+                               "uniform_allocation.csv": cmp.allocation})
+    return cmp
 
 
 def _solve_report(out_dir: Path, args) -> Path:
@@ -190,6 +207,8 @@ def _print_result(result: Result, out_dir: Path | None) -> None:
     print("time: " + ", ".join(f"{k} {v:.2f} s" for k, v in t.items()))
     if out_dir is not None:
         extra = " schedule_wide.csv" if result.case.is_horizon else ""
+        extra += (" prices.csv" if result.prices is not None else "") + "".join(
+            f" {name}" for name in result.extra_files)
         print(f"wrote {out_dir}: allocation.csv events.csv links.csv{extra} summary.json")
     print(CAUTION)
 
@@ -329,6 +348,156 @@ def _add_retune_parser(sub) -> None:
     r.set_defaults(func=cmd_retune)
 
 
+# ------------------------------------------------------------------ simulate
+def cmd_simulate(args) -> int:
+    from .simulate import read_allocation, simulate
+
+    out_dir = Path(args.out)
+    if out_dir.is_dir() and any(out_dir.iterdir()) and not args.force:
+        raise _OutputBusy(out_dir)
+    if args.duration is not None and not args.duration > 0.5:
+        print("error: --duration must be more than 0.5 s", file=sys.stderr)
+        return EXIT_INPUT
+    case = load_case(args.case)
+    _warn(case, args.quiet)
+    allocation = read_allocation(args.allocation, case)
+    sim = simulate(case, allocation, events=None if args.all else args.event,
+                   period=args.period, duration_s=args.duration)
+    sim.write(out_dir, force=args.force)
+    if not args.quiet:
+        for w in sim.warnings:
+            print(f"warning: {w}", file=sys.stderr)
+    if args.quiet:
+        return EXIT_OK
+    sm = sim.summary
+    ok = {True: "ok", False: "NO", None: "-"}
+    rows = [[str(r.event), f"{r.size_mw:+.1f}", f"{r.nadir_hz:.3f}", f"{r.nadir_time_s:.2f}",
+             f"{r.rocof_hz_per_s:.3f}", f"{r.rocof_estimate_hz_per_s:.3f}",
+             f"{r.settled_frequency_hz:.4f}", ok[r.settled_ok], ok[r.nadir_ok], ok[r.rocof_ok]]
+            for r in sm.itertuples()]
+    print(f"case {case.name!r}" + (f", period {sim.period}" if sim.period else "")
+          + f": {len(sm)} event(s) simulated")
+    print(_table(["event", "size MW", "nadir Hz", "at s", "RoCoF Hz/s", "dP fn/2H",
+                  "settles Hz", "settled", "nadir", "RoCoF"], rows, set(range(1, 7))))
+    print(f"wrote {out_dir}: simulation_summary.csv simulation.json and per event series_*.csv "
+          "plot_*.png")
+    print(CAUTION)
+    return EXIT_OK
+
+
+def _add_simulate_parser(sub) -> None:
+    r = sub.add_parser("simulate", help="simulate frequency and tie flows after each event",
+                       description="Time-domain check of an allocation: per-area swing "
+                                   "equations, a first-order governor lag per unit with dead "
+                                   "band and headroom limits, tie-line synchronising power. "
+                                   "Writes per event a time series and a plot, and "
+                                   "simulation_summary.csv (nadir, RoCoF, settled frequency, "
+                                   "limits).")
+    r.add_argument("case", metavar="CASE", help="case folder")
+    r.add_argument("--allocation", required=True, metavar="DIR",
+                   help="folder written by solve --out (its allocation.csv is read)")
+    which = r.add_mutually_exclusive_group(required=True)
+    which.add_argument("--event", action="append", metavar="NAME",
+                       help="event to simulate (repeat for more)")
+    which.add_argument("--all", action="store_true", help="simulate every event")
+    r.add_argument("--period", metavar="LABEL", help="period of a horizon case")
+    r.add_argument("--out", required=True, metavar="DIR", help="folder for the outputs")
+    r.add_argument("--duration", type=float, metavar="S", help="seconds to simulate (default: "
+                   "60, doubled until the end of the run is flat, at most 480)")
+    r.add_argument("--force", action="store_true", help="write into a non-empty --out folder "
+                   "(only optreserve's files change)")
+    r.add_argument("--quiet", action="store_true", help="print nothing on success")
+    r.set_defaults(func=cmd_simulate)
+
+
+# ------------------------------------------------------------------ sweep and batch
+def cmd_sweep(args) -> int:
+    from .sweep import check_out, grid, parse_vary, run_sweep
+
+    check_out(Path(args.out), args.force)
+    case = load_case(args.case)
+    _warn(case, args.quiet)
+    varies = [parse_vary(spec, case) for spec in args.vary]
+    grid(varies)  # a bad combination fails here, before any cluster starts
+    return _run_study(args, "sweep", case.name, [v.key for v in varies],
+                      lambda w, sch, prog: run_sweep(case, varies, workers=w, scheduler=sch,
+                                                     progress=prog),
+                      {"case_path": str(case.path), "vary": list(args.vary)})
+
+
+def cmd_batch(args) -> int:
+    from .sweep import case_folders, check_out, run_batch
+
+    check_out(Path(args.out), args.force)
+    folders = case_folders(Path(args.folder))
+    return _run_study(args, "batch", str(args.folder), ["case"],
+                      lambda w, sch, prog: run_batch(Path(args.folder), workers=w, scheduler=sch,
+                                                     progress=prog),
+                      {"cases": [p.name for p in folders]})
+
+
+def _run_study(args, name, title, keys, run, meta) -> int:
+    from .sweep import ENGINE, default_workers, write_study
+
+    if args.workers is not None and args.workers < 1:
+        print("error: --workers must be at least 1", file=sys.stderr)
+        return EXIT_INPUT
+    workers = None if args.scheduler else (args.workers or default_workers())
+    t0 = time.perf_counter()
+    table = run(workers, args.scheduler, sys.stderr.isatty() and not args.quiet)
+    wall = time.perf_counter() - t0
+    meta = {"command": name, "case": title, **meta, "engine": ENGINE,
+            "workers": workers, "scheduler": args.scheduler, "wall_s": round(wall, 3)}
+    files = write_study(table, Path(args.out), name, keys, meta, force=args.force)
+    counts = table["status"].value_counts()
+    if not args.quiet:
+        where = f"on {args.scheduler}" if args.scheduler else (
+            "serially" if workers == 1 else f"on {workers} local workers")
+        print(f"{name}: {len(table)} points ("
+              + ", ".join(f"{int(n)} {k}" for k, n in counts.items()) + f") in {wall:.1f} s "
+              f"{where}")
+        print(f"wrote {args.out}: " + " ".join(files))
+        print(CAUTION)
+    return EXIT_OK if (table["status"] != "error").any() else EXIT_OTHER
+
+
+def _add_study_parsers(sub) -> None:
+    def engine_args(p):
+        g = p.add_mutually_exclusive_group()
+        g.add_argument("--workers", type=int, metavar="N", help="local worker processes (Dask "
+                       "LocalCluster, one thread each); default: the number of CPU cores; 1 "
+                       "runs serially in this process")
+        g.add_argument("--scheduler", metavar="ADDRESS", help="run on an existing Dask "
+                       "cluster, e.g. tcp://10.0.0.5:8786 (its workers need optreserve)")
+        p.add_argument("--out", required=True, metavar="DIR", help="folder for the table, the "
+                       "plot and the JSON summary")
+        p.add_argument("--force", action="store_true", help="write into a non-empty --out "
+                       "folder (only optreserve's files change)")
+        p.add_argument("--quiet", action="store_true", help="print nothing on success")
+
+    w = sub.add_parser("sweep", help="solve a case over a grid of limits, sizes or prices",
+                       description="Solve the case at every point of a grid and write "
+                                   "sweep.csv (one row per point), sweep.png (cost curve, one "
+                                   "or two varied keys) and sweep.json. Infeasible or failing "
+                                   "points are rows with their status; the rest go on.")
+    w.add_argument("case", metavar="CASE", help="case folder")
+    w.add_argument("--vary", action="append", required=True, metavar="KEY=START:STOP:STEP",
+                   help="a [limits] key (max_settled_deviation_hz, full_activation_deviation_hz,"
+                        " max_nadir_deviation_hz), event:NAME.size_mw, link:NAME.limit_mw, "
+                        "area:NAME.min_own_reserve_mw or price_scale; a range (STOP included) or "
+                        "KEY=V1,V2,...; repeat for a grid")
+    engine_args(w)
+    w.set_defaults(func=cmd_sweep)
+
+    b = sub.add_parser("batch", help="solve every case folder inside a folder (e.g. one per day)",
+                       description="Solve every sub-folder holding a case.toml (sorted by name) "
+                                   "and write batch.csv (one row per case) and batch.json; each "
+                                   "worker reads its case from the folder.")
+    b.add_argument("folder", metavar="DIR", help="folder of case folders")
+    engine_args(b)
+    b.set_defaults(func=cmd_batch)
+
+
 # ------------------------------------------------------------------ entry point
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
@@ -368,6 +537,10 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--quiet", action="store_true", help="print nothing on success")
     s.add_argument("--report", action="store_true", help="also write report.html into --out "
                    "(see the report command)")
+    s.add_argument("--compare", choices=["uniform"], help="also cost the uniform-droop policy "
+                   "(one droop for every capable unit; droop_now_pct where given), list the "
+                   "limits it breaks and the saving of the optimum; with --out writes "
+                   "comparison.csv, comparison.json and uniform_allocation.csv")
     s.set_defaults(func=cmd_solve)
 
     g = sub.add_parser("generate", help="write a synthetic day-ahead case",
@@ -388,6 +561,8 @@ def build_parser() -> argparse.ArgumentParser:
     g.set_defaults(func=cmd_generate)
     _add_report_parser(sub)
     _add_retune_parser(sub)
+    _add_simulate_parser(sub)
+    _add_study_parsers(sub)
     return p
 
 

@@ -22,7 +22,7 @@ import math
 import os
 import re
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -53,11 +53,10 @@ LIMIT = "#cf8a05"
 ALERT = "#b3364a"
 AREA_COLOURS = ["#0e7c7b", "#7b4f9d", "#c4841d", "#3a5ba6", "#5b8c3a", "#b65232",
                 "#2d8db6", "#a1457a", "#6f6a2a", "#44546a"]
-LONG_CAUTION = ("This is a planning study, not operating instructions. Its results depend on "
-                "the data and on the simplifications stated in docs/formulation.md (a "
-                "quasi-steady-state settled point, DC tie flows). The applicable grid code, the "
-                "system operator and licensed engineers decide the actual governor settings, "
-                "reserve holdings and operating limits.")
+LONG_CAUTION = ("The results depend on the data and on the simplifications stated in "
+                "docs/formulation.md (a quasi-steady-state settled point, DC tie flows). The "
+                "applicable grid code, the system operator and licensed engineers decide the "
+                "actual governor settings, reserve holdings and operating limits.")
 
 
 class ReportError(OptreserveError):
@@ -101,6 +100,7 @@ class ResultFolder:
     schedule: pd.DataFrame | None = None
     diagnosis: pd.DataFrame | None = None
     simulation: pd.DataFrame | None = None
+    prices: pd.DataFrame | None = None  # prices.csv, per area (and period), when written
     sim_images: list = field(default_factory=list)  # (file name, png bytes)
     case: object = None
     case_dir: Path | None = None
@@ -114,11 +114,11 @@ class ResultFolder:
     def horizon(self) -> bool:
         return self.allocation is not None and "period" in self.allocation.columns
 
-    @property
-    def periods(self) -> list:
+    @functools.cached_property
+    def periods(self) -> list:  # read after allocation is set
         if not self.horizon:
             return []
-        return list(dict.fromkeys(self.allocation["period"]))
+        return _uniq(self.allocation["period"])
 
     @property
     def nominal_hz(self) -> float:
@@ -130,17 +130,34 @@ class ResultFolder:
         return 50.0
 
 
+def _uniq(values) -> list:
+    """Distinct values in order of first appearance."""
+    return list(pd.unique(pd.Series(values, dtype=object)))
+
+
 def _first_line(exc: Exception) -> str:
     text = str(exc).strip().splitlines()
     return text[0] if text else type(exc).__name__
+
+
+def _leading_comments(path: Path) -> int:
+    """Whole-line # comments above the header (simulation_summary.csv starts with one)."""
+    n = 0
+    with open(path, encoding="utf-8-sig", errors="replace") as fh:
+        for line in fh:
+            if not line.lstrip().startswith("#"):
+                break
+            n += 1
+    return n
 
 
 def read_table(path: Path, schema: dict | None) -> pd.DataFrame:
     """A result CSV with its columns typed; any problem is one ReportError naming file, row
     and column. schema None: every column that is wholly numeric becomes numeric."""
     try:
+        skip = _leading_comments(path)
         raw = pd.read_csv(path, dtype=str, keep_default_na=False, encoding="utf-8-sig",
-                          skip_blank_lines=False)
+                          skip_blank_lines=False, skiprows=skip)
     except FileNotFoundError:
         raise ReportError(f"{path}: missing") from None
     except pd.errors.EmptyDataError:
@@ -149,15 +166,20 @@ def read_table(path: Path, schema: dict | None) -> pd.DataFrame:
         raise ReportError(f"{path}: not a readable CSV file: {_first_line(exc)}") from None
     blank = (raw == "").all(axis=1) if raw.shape[1] else pd.Series(False, index=raw.index)
     raw = raw[~blank]
-    lines = raw.index.to_numpy() + 2  # physical line: header is line 1
+    lines = raw.index.to_numpy() + 2 + skip  # physical line: header is line 1 + comments
     out = pd.DataFrame(index=range(len(raw)))
     cols = list(raw.columns)
-    if schema is None:
+    if schema is None:  # a file of another study: type what is plainly numeric or true/false
         for c in cols:
-            s = raw[c].str.strip()
+            s = raw[c].astype(str).str.strip()
             v = pd.to_numeric(s.where(s != ""), errors="coerce")
-            numeric = len(s) > 0 and bool(((s == "") | v.notna()).all()) and bool((s != "").any())
-            out[c] = v.to_numpy(float) if numeric else s.to_numpy(object)
+            filled = s != ""
+            if len(s) and filled.any() and bool((~filled | v.notna()).all()):
+                out[c] = v.to_numpy(float)
+            elif len(s) and filled.all() and s.str.lower().isin({"true", "false"}).all():
+                out[c] = s.str.lower().eq("true").to_numpy(bool)
+            else:
+                out[c] = s.to_numpy(object)
         return out
     for c, kind in schema.items():
         if c not in raw.columns:
@@ -256,6 +278,8 @@ def read_result(result_dir, case_dir=None) -> ResultFolder:
             if missing:
                 raise ReportError(f"{folder / 'schedule_wide.csv'} column {missing[0]}: "
                                   "missing (a period of allocation.csv)")
+    if rf.solved and "prices.csv" in has:
+        rf.prices = read_table(folder / "prices.csv", None)
     _read_simulation(rf, has)
     _attach_case(rf, case_dir)
     return rf
@@ -359,7 +383,7 @@ def response_curves(allocation: pd.DataFrame, deviation_hz, deadband_hz=None) ->
     dn = allocation["headroom_down_mw"].to_numpy(float)[None, :]
     resp = np.where(x < 0, np.minimum(K * np.maximum(-x - d, 0.0), up),
                     -np.minimum(K * np.maximum(x - d, 0.0), dn))
-    areas = list(dict.fromkeys(allocation["area"]))
+    areas = _uniq(allocation["area"])
     pos = {a: k for k, a in enumerate(areas)}
     member = np.zeros((K.shape[1], len(areas)))
     member[np.arange(K.shape[1]), [pos[a] for a in allocation["area"]]] = 1.0
@@ -453,6 +477,22 @@ def _svg(fig, name: str, label: str) -> str:
                         "Helvetica,sans-serif")
 
 
+def _limit_ticks(axis, limits, lo: float, hi: float) -> None:
+    """Add the limit values to an axis' ticks and print them in the limit colour."""
+    from matplotlib.ticker import MaxNLocator
+
+    base = MaxNLocator(nbins=8).tick_values(lo, hi)
+    tol = 1e-9 * max(1.0, abs(hi - lo))
+    ticks = [t for t in base if lo - tol <= t <= hi + tol
+             and all(abs(t - v) > 0.06 * (hi - lo) for v in limits)]
+    ticks = sorted(ticks + list(limits))
+    axis.set_ticks(ticks)
+    for t, lab in zip(ticks, axis.get_ticklabels()):
+        if any(abs(t - v) <= tol for v in limits):
+            lab.set_color(LIMIT)
+            lab.set_fontweight("bold")
+
+
 def _area_colour(areas: list) -> dict:
     return {a: AREA_COLOURS[k % len(AREA_COLOURS)] for k, a in enumerate(areas)}
 
@@ -465,7 +505,7 @@ def _short_period(labels: list) -> list:
     return s
 
 
-def _thin_ticks(n: int, most: int = 24) -> np.ndarray:
+def _thin_ticks(n: int, most: int = 13) -> np.ndarray:
     step = max(1, math.ceil(n / most))
     return np.arange(0, n, step)
 
@@ -490,7 +530,7 @@ def plot_characteristics(rf: ResultFolder) -> tuple[str, str]:
     grid = grid[np.abs(grid) <= span]
     curves = response_curves(alloc, grid, db)
     areas = list(curves.columns)
-    colours = _area_colour(list(dict.fromkeys(rf.allocation["area"])))
+    colours = _area_colour(_uniq(rf.allocation["area"]))
     damping = _damping_mw_per_hz(rf, period)
 
     fig = _new_figure(10.4, 4.3)
@@ -506,8 +546,10 @@ def plot_characteristics(rf: ResultFolder) -> tuple[str, str]:
                  label="units + load self-regulation")
     if len(ev):
         hot = ev["binding"].to_numpy(bool)
-        ax2.scatter(ev["size_mw"][~hot], ev["settled_frequency_hz"][~hot], s=34, zorder=5,
-                    facecolor=CARD, edgecolor=INK, lw=1.3, label="event: size, settled frequency")
+        if (~hot).any():
+            ax2.scatter(ev["size_mw"][~hot], ev["settled_frequency_hz"][~hot], s=34, zorder=5,
+                        facecolor=CARD, edgecolor=INK, lw=1.3,
+                        label="event: size, settled frequency")
         if hot.any():
             ax2.scatter(ev["size_mw"][hot], ev["settled_frequency_hz"][hot], s=38, zorder=6,
                         color=ALERT, label="event at its limit")
@@ -520,15 +562,17 @@ def plot_characteristics(rf: ResultFolder) -> tuple[str, str]:
         ax.axvline(0, color="#9aa3ab", lw=0.8)
         ax.set_ylim(fn - span, fn + span)
         ax.set_xlabel("response ΔP (MW; + = more generation)")
-    ax1.text(0.01, (F + 0.04 * span) / (2 * span) + 0.5, f"settled limit {fn + F:.3f} Hz",
-             transform=ax1.transAxes, color=LIMIT, fontsize=8)
-    ax1.text(0.99, 0.5 - (F + 0.04 * span) / (2 * span), f"settled limit {fn - F:.3f} Hz",
-             transform=ax1.transAxes, color=LIMIT, fontsize=8, ha="right", va="top")
+    ax1.plot([], [], color=LIMIT, lw=1.2, ls=(0, (4, 2)), label="settled limit")
+    _limit_ticks(ax1.yaxis, [fn - F, fn + F], fn - span, fn + span)
     ax1.set_ylabel("frequency (Hz)")
     ax1.set_title("Per area: units' settled response")
     ax2.set_title("Whole system")
-    ax1.legend(loc="upper right", ncols=1 if len(areas) < 7 else 2)
-    ax2.legend(loc="upper right")
+    # the quadrant right of the axis and above nominal stays empty: under-frequency response
+    # is positive power below nominal; keep the legends under the upper limit line
+    below_limit = 0.5 + F / (2 * span) - 0.03
+    ax1.legend(loc="upper right", bbox_to_anchor=(1.0, below_limit),
+               ncols=1 if len(areas) < 7 else 2)
+    ax2.legend(loc="upper right", bbox_to_anchor=(1.0, below_limit))
     label = "Droop characteristics: frequency against response power per area"
     svg = _svg(fig, "characteristics", label)
     when = f" in period {period}, the one with the least margin," if period is not None else ""
@@ -549,7 +593,7 @@ def plot_characteristics(rf: ResultFolder) -> tuple[str, str]:
 def plot_events(rf: ResultFolder) -> tuple[str, str]:
     """Settled deviation of every event against its limit (per period for horizons)."""
     ev = rf.events
-    names = list(dict.fromkeys(ev["event"]))
+    names = _uniq(ev["event"])
     n = len(names)
     pos = {e: k for k, e in enumerate(names)}
     yk = ev["event"].map(pos).to_numpy()
@@ -574,13 +618,15 @@ def plot_events(rf: ResultFolder) -> tuple[str, str]:
     else:
         worst = pd.DataFrame({"k": yk, "dev": dev, "b": binding})
     ok = ~worst["b"].to_numpy(bool)
-    ax.scatter(worst["dev"][ok], worst["k"][ok], s=46, color=ACCENT, zorder=4,
-               label="worst period" if rf.horizon else "settled deviation")
+    if ok.any():
+        ax.scatter(worst["dev"][ok], worst["k"][ok], s=46, color=ACCENT, zorder=4,
+                   label="worst period" if rf.horizon else "settled deviation")
     if (~ok).any():
         ax.scatter(worst["dev"][~ok], worst["k"][~ok], s=50, color=ALERT, zorder=5,
                    label="at its limit")
     for r in worst.itertuples():
-        txt = f"{r.dev:+.1f}" + (f" @ {_short_period([r.p])[0]}" if rf.horizon else "")
+        txt = f"{r.dev:+.1f}".replace("-", "−") + (f" @ {_short_period([r.p])[0]}"
+                                                   if rf.horizon else "")
         right = r.dev >= 0
         ax.annotate(txt, (r.dev, r.k), xytext=(-7 if right else 7, 6),
                     textcoords="offset points", ha="right" if right else "left", fontsize=8,
@@ -590,8 +636,9 @@ def plot_events(rf: ResultFolder) -> tuple[str, str]:
     ax.set_xlim(-span, span)
     ax.set_xlabel("settled deviation from nominal (mHz; − = under-frequency)")
     ax.grid(axis="y", visible=False)
-    ax.text(lim, -0.55, f" limit ±{lim:.0f} mHz", color=LIMIT, fontsize=8, va="bottom")
-    ax.legend(loc="lower right", ncols=3)
+    _limit_ticks(ax.xaxis, [-lim, lim], -span, span)
+    ax.plot([], [], color=LIMIT, lw=1.3, ls=(0, (4, 2)), label=f"limit ±{lim:.0f} mHz")
+    fig.legend(loc="outside upper right", ncols=4)
     svg = _svg(fig, "events", "Settled frequency deviation per event against the limit")
     cap = ("Settled deviation after each event; the amber lines are the limit the allocation "
            "is held to. " + ("The bar spans the periods; the big dot is the worst period. "
@@ -604,7 +651,7 @@ def _loading_cmap():
 
     return LinearSegmentedColormap.from_list(
         "optreserve-loading", [(0.0, "#f6f3ec"), (0.5, "#e4dcc3"), (0.8, "#e5b04c"),
-                               (0.95, "#d3741f"), (1.0, ALERT)])
+                               (0.95, "#d3741f"), (1.0, ALERT)]).with_extremes(over="#7d1f2f")
 
 
 @_styled("links")
@@ -613,17 +660,16 @@ def plot_links(rf: ResultFolder) -> tuple[str, str] | None:
     lk = rf.links
     if not len(lk):
         return None
-    links = list(dict.fromkeys(lk["link"]))
-    events = list(dict.fromkeys(rf.events["event"]))
+    links = _uniq(lk["link"])
+    events = _uniq(rf.events["event"])
     m = lk.groupby(["link", "event"], sort=False)["loading_pct"].max().unstack()
     m = m.reindex(index=links, columns=events)
     L, E = m.shape
-    fig = _new_figure(10.4, min(1.6 + 0.36 * L + 0.09 * max(len(str(e)) for e in events),
+    fig = _new_figure(10.4, min(1.0 + 0.3 * L + 0.075 * max(len(str(e)) for e in events),
                                 14.0))
     ax = fig.subplots()
     im = ax.imshow(m.to_numpy(float), cmap=_loading_cmap(), vmin=0, vmax=100,
                    aspect="auto", interpolation="nearest")
-    im.cmap.set_over("#7d1f2f")
     if L * E <= 600:
         for i in range(L):
             for j in range(E):
@@ -650,7 +696,7 @@ def plot_links(rf: ResultFolder) -> tuple[str, str] | None:
 @_styled("areas")
 def plot_area_costs(rf: ResultFolder) -> tuple[str, str]:
     a = rf.allocation
-    areas = list(dict.fromkeys(a["area"]))
+    areas = _uniq(a["area"])
     T = max(1, len(rf.periods))
     g = a.groupby("area", sort=False)[["headroom_up_mw", "headroom_down_mw", "cost_per_h"]] \
         .sum().reindex(areas) / T
@@ -707,7 +753,8 @@ def plot_heatmap(rf: ResultFolder) -> tuple[str, str] | None:
         return None
     area = rf.allocation.drop_duplicates("unit").set_index("unit")["area"]
     keep = held.sort_values(ascending=False).index[:HEATMAP_MAX_UNITS]
-    order = sorted(keep, key=lambda u: (list(dict.fromkeys(area)).index(area[u]), str(u)))
+    area_pos = {x: k for k, x in enumerate(_uniq(area))}
+    order = sorted(keep, key=lambda u: (area_pos[area[u]], str(u)))
     panels = [("up", up.loc[order])]
     same = np.allclose(up.loc[order].to_numpy(), dn.loc[order].to_numpy(), atol=1e-6)
     if not same:
@@ -718,7 +765,7 @@ def plot_heatmap(rf: ResultFolder) -> tuple[str, str] | None:
     vmax = max(float(p[1].to_numpy().max()) for p in panels)
     labels = _short_period(periods)
     ticks = _thin_ticks(len(periods))
-    colours = _area_colour(list(dict.fromkeys(rf.allocation["area"])))
+    colours = _area_colour(_uniq(rf.allocation["area"]))
     for ax, (direction, m) in zip(axes, panels):
         im = ax.imshow(m.to_numpy(float), cmap=_heat_cmap(), vmin=0, vmax=vmax, aspect="auto",
                        interpolation="nearest")
@@ -741,15 +788,21 @@ def plot_heatmap(rf: ResultFolder) -> tuple[str, str] | None:
     cap = ("Headroom per providing unit (rows, coloured by area) and period (columns)."
            + (f" The {hidden} units with the least headroom are not drawn; schedule_wide.csv "
               "has them all." if hidden else "")
-           + f" {int((tot == 0).sum())} units hold no headroom in any period.")
+           + _none_holding(int((tot == 0).sum())))
     return svg, cap
+
+
+def _none_holding(n: int) -> str:
+    if n == 0:
+        return ""
+    return (" 1 unit holds" if n == 1 else f" {n} units hold") + " no headroom in any period."
 
 
 @_styled("period-costs")
 def plot_period_costs(rf: ResultFolder) -> tuple[str, str]:
     a = rf.allocation
     periods = rf.periods
-    areas = list(dict.fromkeys(a["area"]))
+    areas = _uniq(a["area"])
     m = a.pivot_table(index="period", columns="area", values="cost_per_h", aggfunc="sum",
                       sort=False).reindex(index=periods, columns=areas).fillna(0.0)
     colours = _area_colour(areas)
@@ -786,10 +839,44 @@ def _fmt(v, spec: str) -> str:
         return "–"
     if spec == "bool":
         return "yes" if v else ""
+    if spec == "yesno":
+        return "yes" if v else "no"
     if spec == "text":
         return str(v)
     out = format(int(round(float(v))), spec) if spec.endswith("d") else format(float(v), spec)
     return out.replace("-", "−") if out.startswith("-") else out
+
+
+_TEXTUAL = ("text", "bool", "yesno")
+# Unit suffixes of column names (the project's convention): heading unit and number format.
+_SUFFIXES = [("_hz_per_s", "Hz/s", ".3f"), ("_mw_per_hz", "MW/Hz", ",.1f"),
+             ("_per_mw_h", "per MW·h", ",.3f"), ("_per_h", "per h", ",.2f"),
+             ("_pct", "%", ".1f"), ("_mhz", "mHz", ".1f"), ("_hz", "Hz", ".4f"),
+             ("_mw", "MW", ",.1f"), ("_s", "s", ".2f")]
+
+
+def generic_cols(df: pd.DataFrame) -> list:
+    """Columns of a table written by another study: heading and unit from the name."""
+    cols = []
+    for c in df.columns:
+        head, unit, spec = str(c), "", "text"
+        if pd.api.types.is_bool_dtype(df[c]):
+            spec = "yesno"
+        elif pd.api.types.is_numeric_dtype(df[c]):
+            spec = ",.4g"
+            for suf, u, f in _SUFFIXES:
+                if head.endswith(suf) and len(head) > len(suf):
+                    head, unit, spec = head[: -len(suf)], u, f
+                    break
+        cols.append(Col(str(c), _words(head), spec, unit))
+    return cols
+
+
+_WORDS = {"mw": "MW", "hz": "Hz", "mhz": "mHz", "rocof": "RoCoF", "ok": "OK", "pu": "p.u."}
+
+
+def _words(name: str) -> str:
+    return " ".join(_WORDS.get(w, w) for w in name.split("_"))
 
 
 @dataclass
@@ -798,27 +885,30 @@ class Col:
     head: str
     spec: str = "text"  # a format spec for numbers, "text" or "bool"
     unit: str = ""
+    given: bool = False  # an input from the case folder (shaded differently)
 
 
-def html_table(df: pd.DataFrame, cols: list, tid: str, hot=None, warm=None,
+def html_table(df: pd.DataFrame, cols: list, tid: str, hot=None, warm=None, on=None,
                caption: str = "", tall: bool = False) -> str:
     """A sortable table; numbers right-aligned in tabular figures; the header stays in view
-    while the body scrolls."""
+    while the body scrolls. Row marks: hot (at a limit), warm (close to one), on (provides)."""
     heads = []
     for c in cols:
-        num = c.spec not in ("text", "bool")
+        num = c.spec not in _TEXTUAL
         unit = f'<span class="u">{_esc(c.unit)}</span>' if c.unit else ""
-        heads.append(f'<th class="{"num" if num else "txt"}" scope="col">{_esc(c.head)}{unit}'
-                     "</th>")
+        cls = ("num" if num else "txt") + (" given" if c.given else "")
+        heads.append(f'<th class="{cls}" scope="col">{_esc(c.head)}{unit}</th>')
     body = []
     hot = np.zeros(len(df), bool) if hot is None else np.asarray(hot, bool)
     warm = np.zeros(len(df), bool) if warm is None else np.asarray(warm, bool)
+    on = np.zeros(len(df), bool) if on is None else np.asarray(on, bool)
     columns = [df[c.key].tolist() for c in cols]
     for i, row in enumerate(zip(*columns)):
-        cls = ' class="hot"' if hot[i] else (' class="warm"' if warm[i] else "")
+        cls = (' class="hot"' if hot[i] else ' class="warm"' if warm[i] else
+               ' class="on"' if on[i] else "")
         cells = []
         for c, v in zip(cols, row):
-            if c.spec in ("text", "bool"):
+            if c.spec in _TEXTUAL:
                 cells.append(f"<td>{_esc(_fmt(v, c.spec))}</td>")
             else:
                 raw = "" if v is None or (isinstance(v, float) and v != v) else repr(float(v))
@@ -835,6 +925,11 @@ def _figure(svg_cap, fid: str) -> str:
         return ""
     svg, cap = svg_cap
     return f'<figure id="{fid}">{svg}<figcaption>{cap}</figcaption></figure>'
+
+
+def _breakable(text) -> str:
+    """Escaped text that may wrap after _ and - (long ids in narrow boxes)."""
+    return re.sub(r"([_\-])", r"\1<wbr>", _esc(text))
 
 
 def _tile(label: str, value: str, sub: str = "", tone: str = "") -> str:
@@ -864,8 +959,8 @@ def _header(rf: ResultFolder) -> str:
                                f"({s.get('horizon_hours', 0):g} h)"))
         elif s.get("objective_per_h") is not None:
             tiles.append(_tile("headroom cost", f"{s['objective_per_h']:,.2f}", "per hour"))
-        tiles.append(_tile("peak headroom", f"{_fmt(s.get('headroom_up_mw'), ',.1f')} ↑ "
-                           f"{_fmt(s.get('headroom_down_mw'), ',.1f')} ↓", "MW up / down"))
+        tiles.append(_tile("peak headroom", f"{_fmt(s.get('headroom_up_mw'), ',.0f')} / "
+                           f"{_fmt(s.get('headroom_down_mw'), ',.0f')}", "MW up / down"))
         n_units = rf.allocation["unit"].nunique()
         tiles.append(_tile("units providing", f"{s.get('units_providing', '–')} / {n_units}",
                            ""))
@@ -874,7 +969,7 @@ def _header(rf: ResultFolder) -> str:
             margin = (ev["limit_hz"] - ev["settled_deviation_hz"].abs()) * 1000
             k = int(np.argmin(margin.to_numpy()))
             tiles.append(_tile("least margin", f"{margin.iloc[k]:.1f} mHz",
-                               _esc(ev["event"].iloc[k])
+                               _breakable(ev["event"].iloc[k])
                                + (f" @ {_esc(ev['period'].iloc[k])}" if rf.horizon else ""),
                                "warn" if ev["binding"].any() else ""))
         lk = rf.links
@@ -882,11 +977,12 @@ def _header(rf: ResultFolder) -> str:
             k = int(np.argmax(lk["loading_pct"].to_numpy()))
             top = lk["loading_pct"].iloc[k]
             tiles.append(_tile("highest link loading", f"{top:.1f} %",
-                               f"{_esc(lk['link'].iloc[k])} after {_esc(lk['event'].iloc[k])}",
+                               f"{_breakable(lk['link'].iloc[k])} after "
+                               f"{_breakable(lk['event'].iloc[k])}",
                                "warn" if top >= 99.99 else ""))
     else:
         tiles.append(_tile("status", "infeasible", "no allocation meets the limits", "bad"))
-    when = datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    when = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
     return (f'<header class="top"><div class="brand">optreserve · reserve & droop study</div>'
             f"<h1>{_esc(name)}</h1><p class=\"meta\">Result folder <code>{_esc(rf.folder)}"
             f"</code>" + (f" · case folder <code>{_esc(rf.case_dir)}</code>"
@@ -895,9 +991,10 @@ def _header(rf: ResultFolder) -> str:
             f'<div class="tiles">{"".join(tiles)}</div></header>')
 
 
-def _section(sid: str, title: str, body: str, lead: str = "") -> str:
+def _section(sid: str, title: str, body: str, lead: str = "", cls: str = "") -> str:
     lead = f'<p class="lead">{lead}</p>' if lead else ""
-    return f'<section id="{sid}"><h2>{_esc(title)}</h2>{lead}{body}</section>'
+    cls = f' class="{cls}"' if cls else ""
+    return f'<section id="{sid}"{cls}><h2>{_esc(title)}</h2>{lead}{body}</section>'
 
 
 def _dl(pairs: list) -> str:
@@ -965,7 +1062,7 @@ def _verification_text(v: dict) -> str:
 
 def _areas_table(rf: ResultFolder) -> str:
     a = rf.allocation
-    areas = list(dict.fromkeys(a["area"]))
+    areas = _uniq(a["area"])
     g = a.assign(n=a["provides"].astype(int))
     keys = ["period", "area"] if rf.horizon else ["area"]
     per = g.groupby(keys, sort=False)[["n", "gain_mw_per_hz", "headroom_up_mw",
@@ -1022,6 +1119,15 @@ def section_cost(rf: ResultFolder) -> str:
         body += html_table(priced.reset_index(drop=True), cols, "prices-table")
     else:
         body += "<p>No event is at its limit: every marginal cost is zero.</p>"
+    if rf.prices is not None and len(rf.prices):
+        pr = rf.prices
+        table = html_table(pr, generic_cols(pr), "area-prices-table", tall=True)
+        body += "<h3>Prices per area (prices.csv)</h3>"
+        if len(pr) > 12:
+            body += (f"<details><summary>{len(pr):,} rows</summary>"
+                     + _filter_box("area-prices-table", "rows") + table + "</details>")
+        else:
+            body += table
     return _section("cost", "Cost and prices", body)
 
 
@@ -1048,7 +1154,7 @@ def _unit_table_frame(rf: ResultFolder) -> tuple[pd.DataFrame, list]:
                             for lo, hi in zip(df["droop_min"], df["droop_max"])]
         T = len(rf.periods)
         cols = [Col("unit", "unit"), Col("area", "area"),
-                Col("periods_on", f"periods providing (of {T})", "d"),
+                Col("periods_on", "periods providing", "d", f"of {T}"),
                 Col("droop_text", "droop range", "text", "%"),
                 Col("gain_max", "peak gain", ",.1f", "MW/Hz"),
                 Col("up", "peak headroom up", ",.1f", "MW"),
@@ -1068,23 +1174,25 @@ def _unit_table_frame(rf: ResultFolder) -> tuple[pd.DataFrame, list]:
                       zip(df["unit"].map(cu["droop_min_pct"]), df["unit"].map(cu["droop_max_pct"]))]
         df["droop_now_pct"] = df["unit"].map(cu["droop_now_pct"])
         df["deadband_mhz"] = df["unit"].map(cu["deadband_mhz"])
-        extra = [Col("capacity_mw", "capacity", ",.0f", "MW"), Col("band", "droop band", "text",
-                                                                    "%"),
-                 Col("droop_now_pct", "droop now", ".2f", "%"),
-                 Col("deadband_mhz", "dead band", ".0f", "mHz")]
-        cols = cols[:2] + extra + cols[2:]
+        cols += [Col("capacity_mw", "capacity", ",.0f", "MW", True),
+                 Col("band", "droop band", "text", "%", True)]
+        if df["droop_now_pct"].notna().any():  # optional in the case: only when given
+            cols.append(Col("droop_now_pct", "droop now", ".2f", "%", True))
+        cols.append(Col("deadband_mhz", "dead band", ".0f", "mHz", True))
     return df, cols
 
 
 def section_units(rf: ResultFolder) -> str:
     df, cols = _unit_table_frame(rf)
     lead = ("Per generating unit: the droop setting and the headroom it holds back for primary "
-            "response. Click a column heading to sort; type to filter.")
+            "response. Click a column heading to sort; type to filter."
+            + (" Shaded headings are inputs from the case folder." if rf.case is not None
+               else ""))
     if rf.horizon:
         lead += (" For a horizon each row sums up the unit's periods; the full per-period "
                  "schedule is below the table and in allocation.csv.")
     body = _filter_box("units-table", "units") + html_table(
-        df, cols, "units-table", warm=df["provides"] if "provides" in df else
+        df, cols, "units-table", on=df["provides"] if "provides" in df else
         df["periods_on"] > 0, tall=True)
     if rf.horizon:
         a = rf.allocation
@@ -1097,7 +1205,7 @@ def section_units(rf: ResultFolder) -> str:
                     Col("cost_per_h", "cost", ",.2f", "per h")]
             body += (f"<details><summary>Every unit in every period ({len(a):,} rows)</summary>"
                      + _filter_box("alloc-table", "rows")
-                     + html_table(a, full, "alloc-table", warm=a["provides"], tall=True)
+                     + html_table(a, full, "alloc-table", on=a["provides"], tall=True)
                      + "</details>")
         else:
             body += (f'<p class="note">The per-period schedule has {len(a):,} rows: see '
@@ -1178,14 +1286,23 @@ def section_simulation(rf: ResultFolder) -> str:
     body = ""
     if rf.simulation is not None:
         sim = rf.simulation
-        cols = [Col(c, c, "text" if sim[c].dtype == object else ",.4g") for c in sim.columns]
-        body += _filter_box("simulation-table", "rows") + html_table(sim, cols,
-                                                                     "simulation-table")
-    for name, data in rf.sim_images:
-        b64 = base64.b64encode(data).decode("ascii")
-        body += (f'<figure class="sim"><img alt="{_esc(name)}" src="data:image/png;base64,'
-                 f'{b64}"><figcaption>{_esc(name)}</figcaption></figure>')
-    lead = "Time-domain simulation outputs found in the result folder."
+        checks = [c for c in sim.columns
+                  if str(c).endswith("_ok") and pd.api.types.is_bool_dtype(sim[c])]
+        failed = ~sim[checks].all(axis=1).to_numpy() if checks else None
+        body += html_table(sim, generic_cols(sim), "simulation-table", hot=failed)
+        if checks:
+            body += ('<p class="note">Red rows fail at least one of the checks '
+                     + ", ".join(f"<code>{_esc(c)}</code>" for c in checks) + ".</p>")
+    if rf.sim_images:
+        body += '<div class="simgrid">'
+        for name, data in rf.sim_images:
+            b64 = base64.b64encode(data).decode("ascii")
+            body += (f'<figure class="sim"><img alt="simulation plot {_esc(name)}" '
+                     f'src="data:image/png;base64,{b64}">'
+                     f"<figcaption>{_esc(name)}</figcaption></figure>")
+        body += "</div>"
+    lead = ("Time-domain simulation outputs found in the result folder: frequency and flows "
+            "over time after each event, from a separate dynamic model.")
     return _section("simulation", "Simulation", body, lead)
 
 
@@ -1199,13 +1316,13 @@ def section_diagnosis(rf: ResultFolder) -> str:
             "independently, shows what is short and where: <b>event</b> rows miss response at "
             "the limit, <b>link</b> rows exceed a tie-line limit, <b>area</b> rows miss own "
             "reserve.")
-    return _section("diagnosis", "Diagnosis", html_table(d, cols, "diagnosis-table"), lead)
+    return _section("diagnosis", "Diagnosis", html_table(d, cols, "diagnosis-table"), lead,
+                    cls="alarm")
 
 
 def section_caution() -> str:
     return (f'<section id="caution" class="caution"><h2>Caution</h2><p><strong>Planning study, '
-            f"not operating instructions.</strong> {_esc(LONG_CAUTION)}</p>"
-            f'<p class="small">{_esc(CAUTION)}</p></section>')
+            f"not operating instructions.</strong> {_esc(LONG_CAUTION)}</p></section>")
 
 
 # ------------------------------------------------------------------ the page
@@ -1218,7 +1335,7 @@ body{margin:0;background:var(--paper);color:var(--ink);
 font:15px/1.5 system-ui,-apple-system,"Segoe UI","DejaVu Sans",Roboto,sans-serif}
 code{font:13px ui-monospace,"DejaVu Sans Mono",Menlo,Consolas,monospace;background:#ece7dc;
 padding:1px 5px;border-radius:4px;word-break:break-all}
-.layout{display:grid;grid-template-columns:200px minmax(0,1fr);gap:28px;max-width:1320px;
+.layout{display:grid;grid-template-columns:180px minmax(0,1fr);gap:24px;max-width:1320px;
 margin:0 auto;padding:0 24px 48px}
 nav.toc{position:sticky;top:0;align-self:start;padding:28px 0 0;font-size:14px}
 nav.toc .mark{font-weight:700;letter-spacing:.04em;color:var(--accent-dark);margin-bottom:12px;
@@ -1237,13 +1354,14 @@ header .brand{font-size:12px;letter-spacing:.14em;text-transform:uppercase;color
 header h1{margin:6px 0 4px;font-size:26px;line-height:1.25;font-weight:650;max-width:80%%}
 header .meta{margin:0 0 16px;color:#c3cbd3;font-size:13px}
 header .meta code{background:rgba(255,255,255,.08);color:#e6ecef}
-.tiles{display:grid;grid-template-columns:repeat(auto-fit,minmax(150px,1fr));gap:10px;
+.tiles{display:grid;grid-template-columns:repeat(auto-fit,minmax(160px,1fr));gap:10px;
 position:relative;z-index:1}
 .tile{background:rgba(255,255,255,.07);border:1px solid rgba(255,255,255,.12);border-radius:10px;
 padding:10px 12px}
 .tile .tl{font-size:11.5px;text-transform:uppercase;letter-spacing:.08em;color:#aab6c1}
-.tile .tv{font-size:21px;font-weight:650;font-variant-numeric:tabular-nums;margin-top:2px}
-.tile .ts{font-size:12px;color:#c3cbd3;overflow-wrap:anywhere}
+.tile .tv{font-size:20px;white-space:nowrap;font-weight:650;font-variant-numeric:tabular-nums;
+margin-top:2px}
+.tile .ts{font-size:12px;color:#c3cbd3;overflow-wrap:break-word}
 .tile.good .tv{color:#7fd6c9}.tile.warn .tv{color:#f2c063}.tile.bad .tv{color:#f39aa8}
 section{background:var(--card);border:1px solid var(--rule);border-radius:14px;
 padding:20px 24px 22px;margin-bottom:22px;scroll-margin-top:12px}
@@ -1262,31 +1380,42 @@ figure svg.plot{display:block;width:100%%;height:auto}
 figure img{display:block;max-width:100%%;height:auto;margin:0 auto;border:1px solid var(--rule);
 border-radius:8px}
 figcaption{color:var(--muted);font-size:13px;margin-top:6px;max-width:95ch}
+.simgrid{display:grid;grid-template-columns:repeat(auto-fill,minmax(380px,1fr));gap:16px;
+margin-top:14px}
+.simgrid figure{margin:0}
+.simgrid figcaption{text-align:center}
 .tbl{max-height:26rem;overflow:auto;border:1px solid var(--rule);border-radius:10px;
 margin:6px 0 10px}
 .tbl.tall{max-height:34rem}
-table.data{border-collapse:separate;border-spacing:0;width:100%%;font-size:13.5px}
+table.data{border-collapse:separate;border-spacing:0;width:100%%;font-size:13px}
 table.data caption{text-align:left;color:var(--muted);padding:6px 10px}
 table.data th{position:sticky;top:0;z-index:1;background:#e8f0ee;color:var(--ink);
-font-weight:600;padding:7px 10px;border-bottom:1px solid #c9d9d6;white-space:nowrap;
-cursor:pointer;user-select:none;vertical-align:bottom}
+font-weight:600;padding:6px 8px;border-bottom:1px solid #c9d9d6;line-height:1.25;
+cursor:pointer;user-select:none;vertical-align:bottom;min-width:4.2em}
+table.data th.given{background:#f1ede3;border-bottom-color:#ddd5c4}
 table.data th .u{display:block;font-weight:400;font-size:11.5px;color:var(--muted)}
 table.data th.num{text-align:right}table.data th.txt{text-align:left}
 table.data th[aria-sort=ascending]:after{content:" ▲";font-size:10px;color:var(--accent)}
 table.data th[aria-sort=descending]:after{content:" ▼";font-size:10px;color:var(--accent)}
-table.data td{padding:5px 10px;border-bottom:1px solid #f0ece3;white-space:nowrap}
+table.data td{padding:4px 8px;border-bottom:1px solid #f0ece3;white-space:nowrap}
 table.data td.num{text-align:right;font-variant-numeric:tabular-nums}
-table.data tbody tr:nth-child(even){background:#faf8f4}
-table.data tbody tr:hover{background:#eef6f4}
-table.data tr.warm td:first-child{box-shadow:inset 3px 0 0 var(--accent)}
-table.data tr.hot{background:#fbecee !important}
+table.data tbody tr{--row:var(--card)}
+table.data tbody tr:nth-child(even){--row:#faf8f4}
+table.data tbody tr.warm{--row:#fdf5e4}
+table.data tbody tr.hot{--row:#fbecee}
+table.data tbody tr:hover{--row:#e6f2ef}
+table.data td{background:var(--row)}
+table.data td:first-child{position:sticky;left:0}
+table.data th:first-child{left:0;z-index:2}
+table.data tr.on td:first-child{box-shadow:inset 3px 0 0 var(--accent)}
+table.data tr.warm td:first-child{box-shadow:inset 3px 0 0 var(--limit)}
 table.data tr.hot td:first-child{box-shadow:inset 3px 0 0 var(--alert)}
 input.filter{font:inherit;font-size:13.5px;padding:6px 10px;border:1px solid var(--rule);
 border-radius:8px;width:min(320px,100%%);margin:4px 0 4px;background:#fdfcf9}
 details{margin:10px 0}
 details summary{cursor:pointer;color:var(--accent-dark);font-weight:600}
 section.caution{background:#fff4f1;border-color:#eab9b1}
-section.caution h2:before{background:var(--alert)}
+section.caution h2:before,section.alarm h2:before{background:var(--alert)}
 section.caution .small{color:var(--muted);font-size:13px}
 footer{color:var(--muted);font-size:12.5px;text-align:center;margin-top:8px}
 @media (max-width:900px){.layout{grid-template-columns:1fr}nav.toc{position:static;

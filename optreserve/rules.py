@@ -90,14 +90,15 @@ def rule_warnings(name: str | None, units, events) -> list[tuple[str, str, int |
     out = []
     db = units["deadband_mhz"].to_numpy(float)
     for k in (db > rule.max_deadband_mhz + 1e-9).nonzero()[0]:
-        out.append(("units.csv", f"dead band {db[k]:g} mHz of unit '{units['unit'].iloc[k]}' "
-                    f"exceeds the {rule.max_deadband_mhz:g} mHz allowed by rule set "
-                    f"'{rule.name}'", int(units["_line"].iloc[k]), "deadband_mhz"))
+        msg = (f"dead band {db[k]:g} mHz of unit '{units['unit'].iloc[k]}' exceeds the "
+               f"{rule.max_deadband_mhz:g} mHz allowed by rule set '{rule.name}'")
+        out.append(("units.csv", msg, int(units["_line"].iloc[k]), "deadband_mhz"))
     size = events["size_mw"].abs()
     if rule.reference_incident_mw is not None and len(size) and size.notna().any():
         big = float(size.max())
         if big < rule.reference_incident_mw - 1e-9:
-            out.append(("events.csv", f"the largest event ({big:g} MW) is below the reference "
-                        f"incident of rule set '{rule.name}' ({rule.reference_incident_mw:g} "
-                        "MW): reserve is not dimensioned for it", None, "size_mw"))
+            msg = (f"the largest event ({big:g} MW) is below the reference incident of rule "
+                   f"set '{rule.name}' ({rule.reference_incident_mw:g} MW): reserve is not "
+                   "dimensioned for it")
+            out.append(("events.csv", msg, None, "size_mw"))
     return out

@@ -28,9 +28,9 @@ import re
 import shutil
 import tempfile
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 import pandas as pd
@@ -52,7 +52,15 @@ LAG_PER_ACTIVATION = 0.25
 DEFAULT_ACTIVATION_TIME_S = 30.0
 # Common practice: tie-line reactances in per unit on a 100 MVA system base.
 BASE_MVA = 100.0
+# Damping ratio given to each tie line's inter-area swing (see _Swing): stands in for the
+# damper windings and stabilisers an area model does not have. Common practice: planners ask
+# inter-area modes for a damping ratio of at least 3-5 %.
+INTER_AREA_DAMPING_RATIO = 0.05
 DURATION_S = 60.0
+# Without an explicit duration a run that has not settled is repeated with twice the length,
+# up to this many seconds (load self-regulation alone can take minutes to finish the job once
+# every provider sits at its headroom).
+MAX_AUTO_DURATION_S = 480.0
 ROCOF_WINDOW_S = 0.5
 # End of run counts as settled when, over the last FLAT_WINDOW_S, no area frequency moves more
 # than FLAT_HZ and no link flow more than FLAT_MW.
@@ -64,7 +72,11 @@ AGREE_HZ = 1.0e-3
 AGREE_MW = 1.0
 # Numerical allowance on limit checks.
 LIMIT_TOL_HZ = 1.0e-5
-METHODS = ("Radau", "BDF", "LSODA")
+METHODS = ("auto", "LSODA", "Radau", "BDF")
+# "auto": LSODA (dense Jacobian, cheapest per step) up to this many states, BDF with the sparse
+# Jacobian above it (measured in benchmarks/simulate_speed.py: with ~270 governor states BDF
+# is about three times faster than LSODA, with ~20 LSODA about three times faster than BDF).
+AUTO_DENSE_STATES = 100
 
 ALLOCATION_FILE = "allocation.csv"
 SUMMARY_FILE = "simulation_summary.csv"
@@ -137,6 +149,10 @@ def _check_allocation(case: Case, df: pd.DataFrame, file: str, col: _Collector) 
     per = (df["period"].fillna("").astype(str).to_numpy(object) if "period" in df.columns
            else np.full(len(df), "", dtype=object))
     labels = [str(p) for p in case.periods]
+    if case.is_horizon and (per == "").all():
+        col.error(file, "the case has periods: a period column with the case's period labels "
+                  "is required", 1, "period")
+        return
     if case.is_horizon:
         known = set(labels)
         for r in np.nonzero(~pd.Series(per).isin(known).to_numpy())[0][:50]:
@@ -154,7 +170,8 @@ def _check_allocation(case: Case, df: pd.DataFrame, file: str, col: _Collector) 
     gain = df["gain_mw_per_hz"].to_numpy(float)
     if "provides" in df.columns:
         prov = df["provides"].to_numpy(object)
-        for r in np.nonzero((prov == False) & (gain > 0))[0][:50]:  # noqa: E712 (object array)
+        said_no = prov == False  # elementwise on an object array: a blank (None) is not "no"
+        for r in np.nonzero(said_no & (gain > 0))[0][:50]:
             col.error(file, f"provides is false but gain_mw_per_hz is {gain[r]:g}",
                       int(lines[r]), "provides")
     if "droop_pct" in df.columns:
@@ -193,9 +210,13 @@ class _Swing:
     """Per-area swing equations and tie-line angle differences: the part shared by the
     governor simulation and the prescribed-response integrator.
 
-    State: Δf (A,) in Hz, then δ (L,) in rad."""
+    State: Δf (A,) in Hz, then δ (L,) in rad. The power on link l is T_l δ_l plus a damping
+    part B_l (Δf_from − Δf_to): it vanishes when the areas swing together, so it changes
+    neither the settled point nor the centre-of-inertia frequency, only how fast the areas
+    stop swinging against each other."""
 
-    def __init__(self, f_n, inertia_mw_s, damping_mw_per_hz, event_mw, incidence, sync_mw_per_rad):
+    def __init__(self, f_n, inertia_mw_s, damping_mw_per_hz, event_mw, incidence,
+                 sync_mw_per_rad, tie_damping_mw_per_hz=None):
         self.f_n = float(f_n)
         self.H = np.asarray(inertia_mw_s, float)
         self.c = self.f_n / (2.0 * self.H)  # Hz/s per MW of imbalance
@@ -204,29 +225,51 @@ class _Swing:
         self.C = np.asarray(incidence, float).reshape(-1, len(self.H))  # (L, A)
         self.T = np.asarray(sync_mw_per_rad, float)
         self.A, self.L = len(self.H), len(self.T)
+        self.B = (np.zeros(self.L) if tie_damping_mw_per_hz is None
+                  else np.asarray(tie_damping_mw_per_hz, float))
         self.CtT = self.C.T * self.T[None, :]  # (A, L): export of each area per rad
+        self.LB = self.C.T @ (self.B[:, None] * self.C)  # (A, A): damping export per Hz
+
+    def link_power(self, df, delta):
+        """Change of each link's flow [MW] (rows of states in columns are allowed)."""
+        return self.T.reshape(-1, *[1] * (np.ndim(delta) - 1)) * delta + (
+            self.B.reshape(-1, *[1] * (np.ndim(df) - 1)) * (self.C @ df))
 
     def derivatives(self, df, delta, p_mech_a):
-        export = self.CtT @ delta
+        export = self.CtT @ delta + self.LB @ df
         ddf = self.c * (p_mech_a - self.P_e - self.D * df - export)
         ddelta = 2.0 * np.pi * (self.C @ df)
         return ddf, ddelta
 
     def jacobian_triplets(self):
         """(rows, cols, values) of the constant Jacobian of [Δf, δ] on themselves."""
-        A, L = self.A, self.L
-        a = np.arange(A)
+        A = self.A
+        J_ff = -self.c[:, None] * (np.diag(self.D) + self.LB)
+        fa, fb = np.nonzero(J_ff)
         la, aa = np.nonzero(self.C)
-        rows = np.r_[a, aa, A + la]
-        cols = np.r_[a, A + la, aa]
-        vals = np.r_[-self.c * self.D, -self.c[aa] * self.C[la, aa] * self.T[la],
+        rows = np.r_[fa, aa, A + la]
+        cols = np.r_[fb, A + la, aa]
+        vals = np.r_[J_ff[fa, fb], -self.c[aa] * self.C[la, aa] * self.T[la],
                      2.0 * np.pi * self.C[la, aa]]
         return rows, cols, vals
 
 
+def tie_damping(f_n, inertia_mw_s, incidence, sync_mw_per_rad, ratio) -> np.ndarray:
+    """B_l [MW/Hz] giving the two-area swing across link l the damping ratio `ratio`.
+    Two areas joined by one link: x = Δf_from − Δf_to obeys x'' + a B x' + 2π a T x = 0 with
+    a = f_n/2 (1/H_from + 1/H_to), so ω² = 2π a T and 2 ζ ω = a B."""
+    C = np.asarray(incidence, float)
+    if C.size == 0 or ratio <= 0:
+        return np.zeros(C.shape[0])
+    inv_h = 1.0 / np.asarray(inertia_mw_s, float)
+    a = 0.5 * f_n * (np.abs(C) @ inv_h)
+    omega = np.sqrt(2.0 * np.pi * a * np.asarray(sync_mw_per_rad, float))
+    return 2.0 * ratio * omega / a
+
+
 def swing_response(inertia_mw_s, event_mw, response_mw: Callable[[float], float],
                    nominal_frequency_hz: float, damping_mw_per_hz: float = 0.0,
-                   duration_s: float = 30.0, times=None, method: str = "Radau",
+                   duration_s: float = 30.0, times=None, method: str = "LSODA",
                    max_step_s: float = 0.05) -> pd.DataFrame:
     """One area's swing equation driven by a prescribed response (a callable t -> MW added by
     the providers), with the simulator's own integrator: for checking against closed forms.
@@ -279,6 +322,7 @@ class System:
     sync_mw_per_rad: np.ndarray  # (L,)
     flow0: np.ndarray
     limit: np.ndarray
+    units_file: str = "units.csv"  # where inertia_s comes from, for error messages
 
     def area_inertia(self, trip: int = -1) -> np.ndarray:
         """Stored energy per area [MW s] after the event (the tripped unit's removed)."""
@@ -326,7 +370,8 @@ def build_system(case: Case, gain, r_up, r_dn, t: int = 0, base_mva: float = BAS
         tau_s=LAG_PER_ACTIVATION * t_act, damping=damping, incidence=C, reactance=X,
         sync_mw_per_rad=base_mva / X if n_l else np.zeros(0),
         flow0=case.link_matrix("flow_mw")[t].astype(float) if n_l else np.zeros(0),
-        limit=case.link_matrix("limit_mw")[t].astype(float) if n_l else np.zeros(0))
+        limit=case.link_matrix("limit_mw")[t].astype(float) if n_l else np.zeros(0),
+        units_file=str(case.path / "units.csv") if case.path else "units.csv")
 
 
 @dataclass
@@ -358,23 +403,25 @@ def output_times(duration_s: float) -> np.ndarray:
 
 
 def simulate_event(sysm: System, size_mw: float, area: int, trip: int = -1,
-                   duration_s: float = DURATION_S, method: str = "Radau",
-                   times=None) -> Trajectory:
+                   duration_s: float = DURATION_S, method: str = "auto", times=None,
+                   damping_ratio: float = INTER_AREA_DAMPING_RATIO) -> Trajectory:
     """Integrate one event: size_mw > 0 is a deficit (frequency falls) in `area`; `trip` is the
-    tripped unit (its inertia and response are lost) or -1 for a load step."""
+    tripped unit (its inertia and response are lost) or -1 for a load step. damping_ratio:
+    inter-area damping of each tie line (tie_damping; 0 = synchronising power only)."""
     if method not in METHODS:
         raise ValueError(f"method must be one of {', '.join(METHODS)}")
     A, L = len(sysm.area_ids), len(sysm.link_ids)
     H_a = sysm.area_inertia(trip)
     if (H_a <= 0).any():
         a = sysm.area_ids[int(np.nonzero(H_a <= 0)[0][0])]
-        raise CaseError([Problem("units.csv", f"area '{a}' has no online inertia"
+        raise CaseError([Problem(sysm.units_file, f"area '{a}' has no online inertia"
                                  + (" once the tripped unit is gone" if trip >= 0 else "")
                                  + ": the per-area swing equation needs inertia_s on some "
                                  "online unit of every area", None, "inertia_s")])
     P_e = np.zeros(A)
     P_e[area] = size_mw
-    sw = _Swing(sysm.f_n, H_a, sysm.damping, P_e, sysm.incidence, sysm.sync_mw_per_rad)
+    B = tie_damping(sysm.f_n, H_a, sysm.incidence, sysm.sync_mw_per_rad, damping_ratio)
+    sw = _Swing(sysm.f_n, H_a, sysm.damping, P_e, sysm.incidence, sysm.sync_mw_per_rad, B)
     # only units that can respond carry a governor state; the others add nothing, ever
     live = (sysm.gain > 0) & ((sysm.r_up > 0) | (sysm.r_dn > 0))
     if trip >= 0:
@@ -384,6 +431,8 @@ def simulate_event(sysm: System, size_mw: float, area: int, trip: int = -1,
     r_up, r_dn, tau = sysm.r_up[g], sysm.r_dn[g], sysm.tau_s[g]
     ga = sysm.unit_area[g]
     n = A + L + len(g)
+    if method == "auto":
+        method = "LSODA" if n <= AUTO_DENSE_STATES else "BDF"
 
     def targets(df_unit):
         raw = K * np.maximum(np.abs(df_unit) - d, 0.0)
@@ -419,7 +468,7 @@ def simulate_event(sysm: System, size_mw: float, area: int, trip: int = -1,
     t_out = output_times(duration_s) if times is None else np.asarray(times, float)
     Y = sol.sol(t_out)
     freq = sysm.f_n + Y[:A].T
-    flows = sysm.flow0[None, :] + Y[A:A + L].T * sysm.sync_mw_per_rad[None, :]
+    flows = sysm.flow0[None, :] + sw.link_power(Y[:A], Y[A:A + L]).T
     resp = np.zeros((len(t_out), len(sysm.unit_ids)))
     resp[:, g] = Y[A + L:].T
 
@@ -445,7 +494,7 @@ def simulate_event(sysm: System, size_mw: float, area: int, trip: int = -1,
                          duration_s, 101)
     Yf = sol.sol(t_flat)
     spread_f = np.ptp(Yf[:A], axis=1).max(initial=0.0)
-    spread_p = (np.ptp(Yf[A:A + L] * sysm.sync_mw_per_rad[:, None], axis=1).max(initial=0.0)
+    spread_p = (np.ptp(sw.link_power(Yf[:A], Yf[A:A + L]), axis=1).max(initial=0.0)
                 if L else 0.0)
     y_end = sol.y[:, -1]
     return Trajectory(
@@ -453,7 +502,7 @@ def simulate_event(sysm: System, size_mw: float, area: int, trip: int = -1,
         nadir_hz=sysm.f_n - sigma * v_n, nadir_time_s=t_n, nadir_area=int(k_a),
         rocof_hz_per_s=float(abs(rate[ra])), rocof_area=ra,
         end_frequency_hz=sysm.f_n + y_end[:A],
-        end_flow_mw=sysm.flow0 + y_end[A:A + L] * sysm.sync_mw_per_rad,
+        end_flow_mw=sysm.flow0 + sw.link_power(y_end[:A], y_end[A:A + L]),
         flat=bool(spread_f <= FLAT_HZ and spread_p <= FLAT_MW),
         inertia_mw_s=float(H_a.sum()))
 
@@ -468,6 +517,7 @@ class Simulation:
     period: str | None
     summary: pd.DataFrame
     series: dict
+    link_limit_mw: dict = field(default_factory=dict)
     warnings: list = field(default_factory=list)
     settings: dict = field(default_factory=dict)
     timings_s: dict = field(default_factory=dict)
@@ -523,14 +573,21 @@ def file_names(events: list[str]) -> dict:
 
 
 def simulate(case: Case, allocation: pd.DataFrame, events: list[str] | None = None,
-             period: str | None = None, duration_s: float = DURATION_S,
-             base_mva: float = BASE_MVA, method: str = "Radau") -> Simulation:
+             period: str | None = None, duration_s: float | None = None,
+             base_mva: float = BASE_MVA, method: str = "auto",
+             damping_ratio: float = INTER_AREA_DAMPING_RATIO) -> Simulation:
     """Simulate the listed events (default: all of the period) of one period of a case under
-    an allocation (result.allocation, or read_allocation(...)). Raises CaseError for an
-    allocation that does not fit the case, an unknown event or period."""
+    an allocation (result.allocation, or read_allocation(...)).
+
+    duration_s: None runs DURATION_S and doubles the run until it ends flat (at most
+    MAX_AUTO_DURATION_S); a number runs exactly that long and only warns when the end is not
+    flat. Raises CaseError for an allocation that does not fit the case, an unknown event or
+    period."""
     t_start = time.perf_counter()
-    if not duration_s > ROCOF_WINDOW_S:
+    if duration_s is not None and not duration_s > ROCOF_WINDOW_S:
         raise ValueError(f"duration must exceed {ROCOF_WINDOW_S} s")
+    if method not in METHODS:
+        raise ValueError(f"method must be one of {', '.join(METHODS)}")
     file = allocation.attrs.get("file", ALLOCATION_FILE)
     col = _Collector()
     _check_allocation(case, allocation, file, col)
@@ -570,7 +627,13 @@ def simulate(case: Case, allocation: pd.DataFrame, events: list[str] | None = No
     t_sim = 0.0
     for m, e in enumerate(e_idx):
         t0 = time.perf_counter()
-        tr = simulate_event(sysm, size[m], area[m], trip[m], duration_s, method)
+        run = DURATION_S if duration_s is None else float(duration_s)
+        while True:
+            tr = simulate_event(sysm, size[m], area[m], trip[m], run, method,
+                                damping_ratio=damping_ratio)
+            if tr.flat or duration_s is not None or run >= MAX_AUTO_DURATION_S:
+                break
+            run = min(2.0 * run, MAX_AUTO_DURATION_S)
         t_sim += time.perf_counter() - t0
         name = str(names[e])
         series[name] = _series_frame(sysm, tr)
@@ -582,7 +645,7 @@ def simulate(case: Case, allocation: pd.DataFrame, events: list[str] | None = No
         gap_p = float(np.max(np.abs(tr.end_flow_mw - steady.flow_after_mw[m]), initial=0.0))
         if not tr.flat:
             warnings.append(f"event {name}: still moving over the last seconds of the "
-                            f"{duration_s:g} s run; run longer (--duration) for the settled "
+                            f"{run:g} s run; run longer (--duration) for the settled "
                             "frequency")
         elif gap_f > AGREE_HZ or gap_p > AGREE_MW:
             warnings.append(f"event {name}: end of run differs from the steady-state point by "
@@ -603,7 +666,7 @@ def simulate(case: Case, allocation: pd.DataFrame, events: list[str] | None = No
             "rocof_estimate_hz_per_s": abs(size[m]) * sysm.f_n / (2.0 * tr.inertia_mw_s),
             "nadir_ramp_estimate_hz": sysm.f_n - sigma * ramp_nadir,
             "settled_frequency_hz": settled, "steady_state_frequency_hz": ss_f,
-            "flat_at_end": tr.flat,
+            "duration_s": run, "flat_at_end": tr.flat,
             "max_link_loading_pct": float(loading[worst]) if worst else math.nan,
             "max_loading_link": sysm.link_ids[worst[1]] if worst else "",
             "settled_ok": bool(abs(settled - sysm.f_n)
@@ -616,13 +679,16 @@ def simulate(case: Case, allocation: pd.DataFrame, events: list[str] | None = No
     summary = pd.DataFrame(rows, columns=list(rows[0]) if rows else ["event"])
     if not case.is_horizon:
         summary = summary.drop(columns="period")
-    settings = {"duration_s": float(duration_s), "method": method, "base_mva": base_mva,
+    settings = {"duration_s": "automatic" if duration_s is None else float(duration_s),
+                "method": method, "base_mva": base_mva,
+                "inter_area_damping_ratio": damping_ratio,
                 "governor_lag": f"first order, time constant = {LAG_PER_ACTIVATION:g} x "
                                 "activation_time_s",
                 "default_activation_time_s": DEFAULT_ACTIVATION_TIME_S,
                 "rocof_window_s": ROCOF_WINDOW_S, "flat_window_s": FLAT_WINDOW_S,
                 "flat_hz": FLAT_HZ, "flat_mw": FLAT_MW}
-    return Simulation(case, label, summary, series, warnings, settings,
+    return Simulation(case, label, summary, series, dict(zip(sysm.link_ids, sysm.limit)),
+                      warnings, settings,
                       {"simulate": t_sim, "total": time.perf_counter() - t_start})
 
 
@@ -721,13 +787,11 @@ def plot_event(sim: Simulation, event: str, path: str | Path) -> Path:
     ax_f.legend(loc="best", fontsize=7)
     ax_f.grid(alpha=0.3)
     flows = [c for c in df.columns if c.startswith("flow_mw:")]
-    lk = case.links.set_index("link")
     for c in flows:
-        line, = ax_p.plot(t, df[c], label=c.split(":", 1)[1])
-        limit = float(lk.loc[c.split(":", 1)[1], "limit_mw"]) if not case.is_horizon else None
-        if limit is not None:
-            ax_p.axhline(np.sign(df[c].iloc[-1] or 1.0) * limit, color=line.get_color(),
-                         ls="--", lw=0.6)
+        link = c.split(":", 1)[1]
+        line, = ax_p.plot(t, df[c], label=link)
+        ax_p.axhline(np.sign(df[c].iloc[-1] or 1.0) * sim.link_limit_mw[link],
+                     color=line.get_color(), ls="--", lw=0.6)
     if flows:
         ax_p.legend(loc="best", fontsize=7)
     ax_p.set_ylabel("tie-line flow [MW]")
@@ -746,7 +810,10 @@ def plot_event(sim: Simulation, event: str, path: str | Path) -> Path:
     fig.suptitle(f"{case.name}\nevent {event} ({row['size_mw']:+.0f} MW{when}): nadir "
                  f"{row['nadir_hz']:.3f} Hz at {row['nadir_time_s']:.2f} s, settles "
                  f"{row['settled_frequency_hz']:.4f} Hz", fontsize=9)
-    fig.text(0.5, 0.008, CAUTION, ha="center", va="bottom", fontsize=6.5, wrap=True)
-    fig.tight_layout(rect=(0, 0.04, 1, 0.95))
+    # the caution on two lines under the figure; fixed margins (tight layout is slow)
+    cut = CAUTION.find(": ") + 1
+    fig.text(0.5, 0.01, CAUTION[:cut] + "\n" + CAUTION[cut:].strip(), ha="center",
+             va="bottom", fontsize=7)
+    fig.subplots_adjust(left=0.09, right=0.98, top=0.92, bottom=0.1, hspace=0.12)
     fig.savefig(path)
     return Path(path)
