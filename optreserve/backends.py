@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from . import progress
 from .program import LinearProgram
 
 # Above this many nonzeros "auto" loads HiGHS in bulk: per-expression Pyomo machinery, not the
@@ -74,7 +75,7 @@ def _options(h, time_limit, mip_gap, verbose, log_file=None):
 
 
 def solve_highs(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
-                want_duals=False) -> Outcome:
+                want_duals=False, start: np.ndarray | None = None) -> Outcome:
     """Load the whole matrix into highspy with one passModel call and solve."""
     import highspy
 
@@ -83,6 +84,7 @@ def solve_highs(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
     log = tempfile.NamedTemporaryFile(prefix="optreserve-highs-", suffix=".log", delete=False)
     log.close()
     _options(h, time_limit, mip_gap, verbose, log.name)
+    progress.step("HiGHS: loading the model", log.name)
     A = lp.A.tocsc()
     integrality = lp.integer.astype(np.int32)
     # the array overload copies numpy buffers straight into HiGHS (format 1 = column-wise,
@@ -93,7 +95,14 @@ def solve_highs(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
             np.ascontiguousarray(lp.row_hi), A.indptr.astype(np.int32),
             A.indices.astype(np.int32), np.ascontiguousarray(A.data, dtype=float), integrality]
     h.passModel(*args)
+    if start is not None and lp.is_mip and len(start) == lp.n_cols:
+        # a previous allocation (e.g. the last dead-band pass) as a first incumbent
+        sol = highspy.HighsSolution()
+        sol.col_value = np.clip(start, lp.col_lo, lp.col_hi).tolist()
+        sol.value_valid = True
+        h.setSolution(sol)
     emit = time.perf_counter() - t0
+    progress.step("HiGHS: solving" + (" (mixed-integer)" if lp.is_mip else ""), log.name)
     try:
         h.run()
         out = _outcome_from_highs(h, lp, "highspy", want_duals)
@@ -161,6 +170,7 @@ def solve_pyomo(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
     from pyomo.contrib.solver.solvers.highs import Highs
 
     t0 = time.perf_counter()
+    progress.step("building the Pyomo model")
     m = to_pyomo(lp)
     emit = time.perf_counter() - t0
     opt = Highs()
@@ -173,6 +183,8 @@ def solve_pyomo(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
     log = tempfile.NamedTemporaryFile(prefix="optreserve-highs-", suffix=".log", delete=False)
     log.close()
     kwargs["solver_options"] = {"log_file": log.name, "random_seed": 0}
+    progress.step("HiGHS via Pyomo: solving" + (" (mixed-integer)" if lp.is_mip else ""),
+                  log.name)
     t1 = time.perf_counter()
     try:
         res = opt.solve(m, **kwargs)
@@ -232,11 +244,11 @@ def to_pyomo(lp: LinearProgram):
     return m
 
 
-def solve_program(lp: LinearProgram, engine="auto", **kw) -> Outcome:
+def solve_program(lp: LinearProgram, engine="auto", start=None, **kw) -> Outcome:
     if engine == "auto":
         engine = "highspy" if lp.A.nnz > AUTO_BULK_NONZEROS else "pyomo"
     if engine == "highspy":
-        return solve_highs(lp, **kw)
+        return solve_highs(lp, start=start, **kw)
     if engine == "pyomo":
         return solve_pyomo(lp, **kw)
     raise ValueError(f"unknown engine {engine!r} (auto, highspy or pyomo)")

@@ -3,12 +3,15 @@
 from __future__ import annotations
 
 import argparse
+import json
 import sys
 import time
 from pathlib import Path
 
 from . import __version__
+from . import progress
 from .errors import CaseError, InfeasibleError, OptreserveError
+from .progress import TerminalStatus, use_colour
 from .reader import load_case
 from .results import CAUTION, Result, write_table
 from .screen import event_capability
@@ -39,6 +42,16 @@ def _warn(case, quiet: bool) -> None:
 def cmd_check(args) -> int:
     case = load_case(args.case)
     _warn(case, args.quiet)
+    if getattr(args, "json", False):
+        cap = event_capability(case)
+        short = bool((cap["short_mw"] > 0).any())
+        print(json.dumps({
+            "status": "short" if short else "valid", "case": case.name,
+            "units": len(case.units), "areas": len(case.areas), "links": len(case.links),
+            "events": len(case.events), "periods": case.n_periods,
+            "warnings": list(case.warnings),
+            "screening": json.loads(cap.to_json(orient="records"))}, indent=2))
+        return EXIT_INFEASIBLE if short else EXIT_OK
     u, ev = case.units, case.events
     n_under = int((ev["size_mw"] > 0).sum())
     n_over = int((ev["size_mw"] < 0).sum())
@@ -112,7 +125,13 @@ def cmd_solve(args) -> int:
         result.write(out_dir, force=args.force)
         report = _solve_report(out_dir, args) if getattr(args, "report", False) else None
     result.timings_s["total"] = time.perf_counter() - t0
-    if not args.quiet:
+    if getattr(args, "json", False):
+        doc = dict(result.summary)
+        doc["events"] = json.loads(result.events.to_json(orient="records"))
+        if comparison is not None:
+            doc["comparison"] = comparison.to_json()
+        print(json.dumps(doc, indent=2))
+    elif not args.quiet:
         _print_result(result, out_dir)
         if comparison is not None:
             print("\n".join(comparison.lines()))
@@ -162,6 +181,11 @@ def _write_diagnosis(exc: InfeasibleError, out_dir: Path, force: bool) -> None:
         shutil.rmtree(tmp, ignore_errors=True)
 
 
+def _paint(text: str, code: str) -> str:
+    """ANSI colour on a terminal only (and never with NO_COLOR set)."""
+    return f"\033[{code}m{text}\033[0m" if use_colour() else text
+
+
 def _print_result(result: Result, out_dir: Path | None) -> None:
     s = result.summary
     gap = f", gap {s['mip_gap'] * 100:.3f} %" if s["mip_gap"] is not None else ""
@@ -170,7 +194,8 @@ def _print_result(result: Result, out_dir: Path | None) -> None:
                 f"({s['horizon_hours']:g} h)")
     else:
         cost = f"cost {s['objective_per_h']:.2f} per hour"
-    print(f"case {s['case']!r}: {s['status']}, {cost}{gap}")
+    status = _paint(s["status"], "32" if s["status"] == "optimal" else "33")
+    print(f"case {s['case']!r}: {status}, {cost}{gap}")
     print(f"{s['units_providing']} of {len(result.case.units)} units provide; peak headroom "
           f"{s['headroom_up_mw']:.1f} MW up, {s['headroom_down_mw']:.1f} MW down")
     ev = result.events.assign(
@@ -280,6 +305,11 @@ def cmd_retune(args) -> int:
         raise
     if out_dir is not None:
         prop.write(out_dir, force=args.force)
+    if getattr(args, "json", False):
+        doc = prop.summary()
+        doc["proposal"] = json.loads(prop.changed.to_json(orient="records"))
+        print(json.dumps(doc, indent=2))
+        return EXIT_OK
     if args.quiet:
         return EXIT_OK
     if prop.already_safe:
@@ -345,6 +375,7 @@ def _add_retune_parser(sub) -> None:
     r.add_argument("--time-limit", type=float, metavar="S", help="solver time limit per stage")
     r.add_argument("--mip-gap", type=float, metavar="G", help="relative MIP gap")
     r.add_argument("--quiet", action="store_true", help="print nothing on success")
+    r.add_argument("--json", action="store_true", help="print the proposal as JSON")
     r.set_defaults(func=cmd_retune)
 
 
@@ -364,11 +395,10 @@ def cmd_simulate(args) -> int:
     sim = simulate(case, allocation, events=None if args.all else args.event,
                    period=args.period, duration_s=args.duration)
     sim.write(out_dir, force=args.force)
-    if not args.quiet:
-        for w in sim.warnings:
-            print(f"warning: {w}", file=sys.stderr)
     if args.quiet:
         return EXIT_OK
+    for w in sim.warnings:
+        print(f"warning: {w}", file=sys.stderr)
     sm = sim.summary
     ok = {True: "ok", False: "NO", None: "-"}
     rows = [[str(r.event), f"{r.size_mw:+.1f}", f"{r.nadir_hz:.3f}", f"{r.nadir_time_s:.2f}",
@@ -379,6 +409,9 @@ def cmd_simulate(args) -> int:
           + f": {len(sm)} event(s) simulated")
     print(_table(["event", "size MW", "nadir Hz", "at s", "RoCoF Hz/s", "dP fn/2H",
                   "settles Hz", "settled", "nadir", "RoCoF"], rows, set(range(1, 7))))
+    broken = int(sm[["settled_ok", "nadir_ok", "rocof_ok"]].eq(False).any(axis=1).sum())
+    if broken:
+        print(f"{broken} event(s) break a limit in the simulation", file=sys.stderr)
     print(f"wrote {out_dir}: simulation_summary.csv simulation.json and per event series_*.csv "
           "plot_*.png")
     print(CAUTION)
@@ -514,6 +547,7 @@ def build_parser() -> argparse.ArgumentParser:
                                    "settled limit needs against the most the case can offer.")
     c.add_argument("case", metavar="CASE", help="case folder (case.toml, units.csv, ...)")
     c.add_argument("--quiet", action="store_true", help="no warnings")
+    c.add_argument("--json", action="store_true", help="print a JSON document (for scripts)")
     c.set_defaults(func=cmd_check)
 
     s = sub.add_parser("solve", help="optimise droop and headroom",
@@ -535,6 +569,8 @@ def build_parser() -> argparse.ArgumentParser:
                    "participation or droop steps)")
     s.add_argument("--verbose", action="store_true", help="show the HiGHS log")
     s.add_argument("--quiet", action="store_true", help="print nothing on success")
+    s.add_argument("--json", action="store_true", help="print the summary and events as JSON "
+                   "instead of tables (for scripts)")
     s.add_argument("--report", action="store_true", help="also write report.html into --out "
                    "(see the report command)")
     s.add_argument("--compare", choices=["uniform"], help="also cost the uniform-droop policy "
@@ -572,16 +608,26 @@ def main(argv: list[str] | None = None) -> int:
     if not getattr(args, "command", None):
         parser.print_help()
         return EXIT_INPUT
+    as_json = bool(getattr(args, "json", False))
     try:
-        return args.func(args)
+        if getattr(args, "quiet", False) or as_json:
+            return args.func(args)
+        with TerminalStatus() as status, progress.listening(status):
+            return args.func(args)
     except CaseError as exc:
         for p in exc.problems:
             print(f"error: {p}", file=sys.stderr)
+        if as_json:
+            print(json.dumps({"status": "input_error", "errors": [
+                {"file": p.file, "row": p.row, "column": p.column, "message": p.message}
+                for p in exc.problems]}, indent=2))
         return EXIT_INPUT
     except InfeasibleError as exc:
         print(f"infeasible: {exc}", file=sys.stderr)
         for line in exc.shortfalls:
             print(f"  {line}", file=sys.stderr)
+        if as_json:
+            print(json.dumps({"status": "infeasible", "shortfalls": exc.shortfalls}, indent=2))
         return EXIT_INFEASIBLE
     except OptreserveError as exc:
         print(f"error: {exc}", file=sys.stderr)

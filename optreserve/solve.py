@@ -9,6 +9,7 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
+from . import progress
 from .backends import Outcome, solve_highs, solve_program
 from .case import Case
 from .errors import InfeasibleError, SolverError, VerificationError
@@ -44,6 +45,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     opts = dict(time_limit=time_limit, mip_gap=mip_gap, verbose=verbose)
 
     t0 = time.perf_counter()
+    progress.step("preparing the model data")
     hz = prepare(case) if hz is None else hz
     t_build = time.perf_counter() - t0
     t_solve = 0.0
@@ -54,6 +56,8 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     while True:
         iterations += 1
         t0 = time.perf_counter()
+        progress.step("building the model" + (f" (dead-band pass {iterations})"
+                                               if iterations > 1 else ""))
         lp, info = build_model(case, x_hat=x_hat, relax=relax, hz=hz)
         if extend is not None:
             extend(lp, info)
@@ -65,7 +69,8 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
                 points = None
                 break
             opts["time_limit"] = max(left, 0.01)
-        out = solve_program(lp, engine=engine, want_duals=not lp.is_mip, **opts)
+        start = history[-1][2].x if history and history[-1][0].n_cols == lp.n_cols else None
+        out = solve_program(lp, engine=engine, want_duals=not lp.is_mip, start=start, **opts)
         t_build += out.emit_time_s
         t_solve += out.solve_time_s
         if out.status == "infeasible":
@@ -100,6 +105,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
                               f"{out.message}){hint}")
         info.hz = dispatch_view(info.hz, lp, out.x)
         history.append((lp, info, out))
+        progress.step("recomputing settled points independently")
         points = exact_points(info, lp, out.x)
         exact = np.abs(points.deviation_hz)
         live = info.hz.dP > 0
