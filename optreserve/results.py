@@ -52,6 +52,7 @@ class Result:
     energy_cost: float | None = None  # co-optimisation only (over the horizon, or per hour)
     reserve_cost: float | None = None
     solver_warnings: list = field(default_factory=list)
+    nadir_check: dict = field(default_factory=dict)  # simulated nadir check of the solve
     # per area (and period): reserve_price_per_mw_h, next_mw_up_cost_per_mw_h (solve.area_prices)
     prices: pd.DataFrame | None = None
     # further files written with the result: name -> DataFrame (CSV) or dict (JSON)
@@ -187,6 +188,8 @@ class Result:
             "verification": {k: _num(v) for k, v in self.verification.items()},
             "dead_band_iterations": self.iterations,
             "solver_warnings": list(self.solver_warnings),
+            "nadir_check": {k: _num(v) if isinstance(v, float) else v
+                            for k, v in self.nadir_check.items()},
             "timings_s": {k: round(float(v), 4) for k, v in self.timings_s.items()},
             "caution": CAUTION,
         }

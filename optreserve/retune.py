@@ -16,7 +16,7 @@ import pandas as pd
 
 from .case import Case, DroopSettings
 from .errors import CaseError, OptreserveError, Problem
-from .model import Horizon, ModelInfo, nadir_ramp_needed, prepare
+from .model import Horizon, ModelInfo, nadir_shortfall, prepare
 from .program import LinearProgram
 from .results import Result
 from .settle import BatchPoints, settle_instances
@@ -131,17 +131,10 @@ def violations(case: Case, hz: Horizon, gain, r_up, r_dn, limit_hz: float) -> li
         out.append(f"area {case.areas['area'].iloc[a]}{per}: own reserve "
                    f"{hz.own[t, a] - held[t, a]:.1f} MW short")
     if case.limits.max_nadir_deviation_hz is not None:
-        need = nadir_ramp_needed(case, hz)
-        T = np.where(np.isfinite(hz.T_act) & (hz.T_act > 0), hz.T_act, np.inf)
-        r = np.where((hz.sigma > 0)[:, None], r_up[hz.inst_t], r_dn[hz.inst_t]) / T[None, :]
-        M = len(hz.dP)
-        for arr in (hz.trip, hz.absent):
-            m = np.nonzero(arr >= 0)[0]
-            r[m, arr[m]] = 0.0
-        have = r.sum(axis=1)
-        for m in np.nonzero(have < need - 1e-6)[0][:M]:
-            out.append(f"event {hz.inst_name[m]}{when(m)}: nadir needs "
-                       f"{need[m] - have[m]:.1f} MW/s more ramp")
+        short = nadir_shortfall(case, hz, r_up, r_dn)
+        for m in np.nonzero(short > 1e-6)[0]:
+            out.append(f"event {hz.inst_name[m]}{when(m)}: nadir limit needs {short[m]:.1f} "
+                       "MW s more response energy before the nadir")
     return out
 
 

@@ -275,20 +275,7 @@ def _demo_events():
     return list(pd.read_csv(DEMO / "events.csv", comment="#")["event"])
 
 
-# The optimiser's nadir row credits every provider with its headroom ramped linearly over its
-# activation time (ramp model). A droop governor delivers K |df| at most, so headroom held
-# beyond K (F_act - d) comes only once the frequency has fallen further; in the demo the
-# large battery holds 126 MW of up headroom at K = 250 MW/Hz (reached at 0.5 Hz) to pass the
-# nadir row, and the first-order-lag simulation dips 0.89 Hz for the largest trip. Strict:
-# this fails as soon as the model's nadir row is fixed, so the mark must then go.
-NADIR_GAP = {"trip_kelvstrand_nuclear1"}
-
-
-@pytest.mark.parametrize("name", [
-    pytest.param(n, marks=pytest.mark.xfail(
-        strict=True, reason="ramp-model nadir row over-credits headroom a droop governor "
-                            "delivers only beyond the nadir limit (see NADIR_GAP)"))
-    if n in NADIR_GAP else n for n in _demo_events()])
+@pytest.mark.parametrize("name", _demo_events())
 def test_demo_nadir_within_the_nadir_limit(demo, name):
     """max_nadir_deviation_hz = 0.8 Hz (case.toml; the instantaneous-deviation limit of
     Continental Europe, EU 2017/1485 Annex III, from memory in references.md): the simulated
