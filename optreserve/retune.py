@@ -19,8 +19,7 @@ from .errors import CaseError, OptreserveError, Problem
 from .model import Horizon, ModelInfo, nadir_shortfall, prepare
 from .program import LinearProgram
 from .results import Result
-from .settle import BatchPoints, settle_instances
-from .solve import solve
+from .solve import evaluate_allocation, solve
 
 # Continuous droop bands are searched on this grid (plus today's setting) in a retune.
 GRID_PCT = 0.1
@@ -93,20 +92,10 @@ def today(case: Case, hz: Horizon) -> Today:
     return Today(np.where(K > 0, now, np.nan), gain, r_up, r_dn)
 
 
-def evaluate(case: Case, hz: Horizon, gain, r_up, r_dn) -> BatchPoints:
-    """Independent settled points of every instance for given per-period gains/headroom."""
-    apos = {a: k for k, a in enumerate(case.areas["area"])}
-    return settle_instances(
-        hz.dP, hz.sigma, hz.inst_t, hz.inst_area, hz.trip, gain, r_up, r_dn, hz.d_hz, hz.area,
-        hz.D_a, hz.F0, [apos[a] for a in case.links["from_area"]],
-        [apos[a] for a in case.links["to_area"]],
-        case.link_matrix("reactance_pu").astype(float), absent=hz.absent)
-
-
 def violations(case: Case, hz: Horizon, gain, r_up, r_dn, limit_hz: float) -> list[str]:
     """Every limit the allocation breaks, recomputed independently, in words."""
     out = []
-    pts = evaluate(case, hz, gain, r_up, r_dn)
+    pts = evaluate_allocation(case, hz, gain, r_up, r_dn)
     labels = [str(p) for p in case.periods] if case.is_horizon else [""]
 
     def when(m):
@@ -401,8 +390,8 @@ def _proposal_table(case, hz, now: Today, result, F_model, survive) -> pd.DataFr
 
 def _before_after(case, hz, now: Today, result) -> pd.DataFrame:
     gain, r_up, r_dn = _period_arrays(case, hz, result)
-    before = evaluate(case, hz, now.gain, now.r_up, now.r_dn)
-    after = evaluate(case, hz, gain, r_up, r_dn)
+    before = evaluate_allocation(case, hz, now.gain, now.r_up, now.r_dn)
+    after = evaluate_allocation(case, hz, gain, r_up, r_dn)
     base = hz.absent < 0
     F = min(case.limits.max_settled_deviation_hz, case.limits.full_activation_deviation_hz)
     f_n = case.nominal_frequency_hz

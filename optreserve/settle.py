@@ -59,18 +59,8 @@ def settle_deviation(dP: float, gain, deadband_hz, headroom, damping_mw_per_hz: 
 
 def dc_flows(n_areas: int, from_idx, to_idx, reactance, injection) -> np.ndarray:
     """DC load flow: B theta = P with theta_0 = 0; flow_l = (theta_f - theta_t) / x_l."""
-    f = np.asarray(from_idx, int)
-    t = np.asarray(to_idx, int)
-    b = 1.0 / np.asarray(reactance, float)
-    B = np.zeros((n_areas, n_areas))
-    np.add.at(B, (f, f), b)
-    np.add.at(B, (t, t), b)
-    np.add.at(B, (f, t), -b)
-    np.add.at(B, (t, f), -b)
-    theta = np.zeros(n_areas)
-    if n_areas > 1:
-        theta[1:] = np.linalg.solve(B[1:, 1:], np.asarray(injection, float)[1:])
-    return b * (theta[f] - theta[t])
+    inj = np.asarray(injection, float)[None, :]
+    return _dc_flows_many(n_areas, from_idx, to_idx, reactance, inj)[0]
 
 
 @dataclass(frozen=True)

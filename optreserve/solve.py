@@ -234,8 +234,11 @@ def period_values(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
 def exact_points(info: ModelInfo, lp: LinearProgram, x: np.ndarray) -> BatchPoints:
     """Independent settled points of every event instance (scalar balance + DC flows)."""
     gain, r_up, r_dn = period_values(lp, info, x)
-    hz = info.hz
-    case = info.case
+    return evaluate_allocation(info.case, info.hz, gain, r_up, r_dn)
+
+
+def evaluate_allocation(case: Case, hz: Horizon, gain, r_up, r_dn) -> BatchPoints:
+    """Independent settled points of every instance for per-period gains and headroom."""
     apos = {a: k for k, a in enumerate(case.areas["area"])}
     return settle_instances(
         hz.dP, hz.sigma, hz.inst_t, hz.inst_area, hz.trip, gain, r_up, r_dn, hz.d_hz, hz.area,
