@@ -539,7 +539,9 @@ def nadir_terms(case: Case, hz: Horizon, scale=None):
     tau = LAG_PER_ACTIVATION * T_act  # (N,)
     s_ = np.maximum(times - delay[:, None], 0.0)[:, :, None]  # (M, K, 1)
     coef = s_ - tau[None, None, :] * (1.0 - np.exp(-s_ / tau[None, None, :]))
-    return coef, np.where(dP[:, None] > 0, need, -np.inf)
+    # without stored-energy data (no inertia_s) the requirement cannot be stated: skipped
+    # (the reader warns), rather than declaring every event impossible
+    return coef, np.where((dP[:, None] > 0) & (hz.H_sys[:, None] > 0), need, -np.inf)
 
 
 def nadir_shortfall(case: Case, hz: Horizon, r_up, r_dn, scale=None) -> np.ndarray:

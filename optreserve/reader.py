@@ -527,11 +527,12 @@ def load_case(path: str | Path) -> Case:
         prov = units["provides"].to_numpy(bool)
         if units["inertia_s"].isna().all():
             col.warn(lab("units.csv"), "max_nadir_deviation_hz is set but no unit has "
-                     "inertia_s: the nadir requirement cannot be met", None, "inertia_s")
+                     "inertia_s: the nadir requirement is skipped", None, "inertia_s")
         n_no_t = int((prov & units["activation_time_s"].isna().to_numpy()).sum())
         if n_no_t:
-            col.warn(lab("units.csv"), f"{n_no_t} provider(s) without activation_time_s count "
-                     "for nothing in the nadir requirement", None, "activation_time_s")
+            col.warn(lab("units.csv"), f"{n_no_t} provider(s) without activation_time_s are "
+                     "taken to deliver in 30 s for the nadir requirement", None,
+                     "activation_time_s")
     steps = settings.get("droop.steps_pct")
     if steps is not None:
         lo = units["droop_min_pct"].to_numpy()

@@ -156,7 +156,7 @@ def _nadir_round(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
     one breaks it. Returns True when the case must be solved again."""
     N_max = case.limits.max_nadir_deviation_hz
     hz = info.hz
-    live = np.nonzero(hz.dP > 0)[0]
+    live = np.nonzero((hz.dP > 0) & (hz.H_sys > 0))[0]
     if N_max is None or len(live) == 0 or len(hz.dP) > NADIR_SIM_MAX_INSTANCES:
         return False
     from .simulate import build_system, simulate_event
