@@ -270,10 +270,14 @@ def write_table(df: pd.DataFrame, path: Path) -> None:
             cols.append(np.where(v, "true", "false").tolist())
         elif np.issubdtype(v.dtype, np.floating):
             r = np.round(v.astype(float), 6) + 0.0
-            if np.isnan(r).any():
-                cols.append(["" if x != x else f"{x:.6f}" for x in r.tolist()])
-            else:  # one formatting call for the whole column
-                cols.append((("%.6f\n" * len(r)) % tuple(r.tolist())).split("\n")[:-1])
+            # one formatting call for the whole column; missing values become empty cells
+            text = (("%.6f\n" * len(r)) % tuple(r.tolist())).split("\n")[:-1]
+            nan = np.isnan(r)
+            if nan.any():
+                arr = np.array(text, dtype=object)
+                arr[nan] = ""
+                text = arr.tolist()
+            cols.append(text)
         else:
             cols.append(["" if x is None or (isinstance(x, float) and x != x) else str(x)
                          for x in v.tolist()])
@@ -281,7 +285,7 @@ def write_table(df: pd.DataFrame, path: Path) -> None:
     special = re.compile(r'[,"\r\n]')
     text_cols = [col for col, k in zip(cols, df.columns)
                  if not (df[k].dtype == bool or pd.api.types.is_float_dtype(df[k]))]
-    plain = not any(special.search(x) for c in [header] + text_cols for x in c)
+    plain = not any(special.search("\x1f".join(c)) for c in [header] + text_cols)
     with open(path, "w", newline="", encoding="utf-8") as fh:
         if plain:  # nothing to quote: join directly (several times faster than csv.writer)
             fh.write(",".join(header) + "\n")
