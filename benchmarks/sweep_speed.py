@@ -38,6 +38,7 @@ def main() -> int:
     p.add_argument("--quick", action="store_true", help="20 points instead of 200")
     p.add_argument("--workers", type=int, default=2)
     p.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
+    p.add_argument("--save", metavar="DIR", help="also write both tables as CSV")
     args = p.parse_args()
 
     import dask
@@ -65,6 +66,14 @@ def main() -> int:
 
     cols = [c for c in serial.columns if c != "solve_s"]
     equal = bool(serial[cols].equals(dist[cols]))
+    if args.save:
+        Path(args.save).mkdir(parents=True, exist_ok=True)
+        serial.to_csv(Path(args.save) / "serial.csv", index=False)
+        dist.to_csv(Path(args.save) / "distributed.csv", index=False)
+    if not equal:
+        diff = (serial[cols] != dist[cols]) & ~(serial[cols].isna() & dist[cols].isna())
+        print("rows that differ:", list(diff.any(axis=1).to_numpy().nonzero()[0][:20]),
+              file=sys.stderr)
     fig = {
         "points": n, "workers": args.workers, "serial_s": round(t_serial, 2),
         "distributed_s": round(t_dist, 2), "speed_up": round(t_serial / t_dist, 3),
@@ -79,6 +88,7 @@ def main() -> int:
         "machine": f"{cpu_model()}, {os.cpu_count()} logical CPUs, {platform.system()} "
                    f"{platform.release()}",
         "python": platform.python_version(), "optreserve": optreserve.__version__,
+        "optreserve_path": str(Path(optreserve.__file__).parent),
         "highspy": getattr(sys.modules["highspy"], "__version__", "?"),
         "dask": dask.__version__, "pandas": pd.__version__,
     }

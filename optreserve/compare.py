@@ -18,9 +18,8 @@ import numpy as np
 import pandas as pd
 
 from .case import Case
-from .model import Horizon, nadir_ramp_needed, prepare
+from .model import Horizon, nadir_shortfall, prepare
 from .results import CAUTION, Result
-from .settle import settle_instances
 
 # grid of the common droop when the case has no steps_pct
 GRID_STEP_PCT = 0.01
@@ -70,8 +69,9 @@ class Comparison:
             for r in v.head(10).itertuples():
                 when = f" in {r.period}" if "period" in v.columns and r.period else ""
                 after = f" after {r.event}" if r.event and r.event != r.element else ""
-                out.append(f"    {r.limit} {r.element}{after}{when}: {r.value:.4g} against "
-                           f"{r.limit_value:.4g} {r.quantity_unit}")
+                what = (f"{r.value:.4g} {r.quantity_unit}" if r.limit == "nadir_energy" else
+                        f"{r.value:.4g} against {r.limit_value:.4g} {r.quantity_unit}")
+                out.append(f"    {r.limit} {r.element}{after}{when}: {what}")
             if len(v) > 10:
                 out.append(f"    ... and {len(v) - 10} more (comparison.json)")
         else:
@@ -191,12 +191,9 @@ def _evaluate(case: Case, hz: Horizon, droop_pct: np.ndarray, capable: np.ndarra
     r_up = np.where(hz.need_up[:, None], np.minimum(want, hz.R_up), 0.0)
     r_dn = np.where(hz.need_dn[:, None], np.minimum(want, hz.R_dn), 0.0)
     cost = hz.price_up * r_up + hz.price_dn * r_dn
-    apos = {a: k for k, a in enumerate(case.areas["area"])}
-    pts = settle_instances(
-        hz.dP, hz.sigma, hz.inst_t, hz.inst_area, hz.trip, gain, r_up, r_dn, hz.d_hz, hz.area,
-        hz.D_a, hz.F0, [apos[a] for a in case.links["from_area"]],
-        [apos[a] for a in case.links["to_area"]], case.link_matrix("reactance_pu").astype(float),
-        absent=getattr(hz, "absent", None))
+    from .solve import evaluate_allocation  # settle.py: scalar balance and DC flows
+
+    pts = evaluate_allocation(case, hz, gain, r_up, r_dn)
     labels = [str(p) for p in case.periods] if case.is_horizon else [""] * hz.T
     units, areas = case.units["unit"].to_numpy(object), case.areas["area"].to_numpy(object)
     links = case.links["link"].to_numpy(object)
@@ -223,23 +220,18 @@ def _evaluate(case: Case, hz: Horizon, droop_pct: np.ndarray, capable: np.ndarra
                      float(min(hz.R_up[t, i] if hz.need_up[t] else np.inf,
                                hz.R_dn[t, i] if hz.need_dn[t] else np.inf)), "MW"))
     if case.limits.max_nadir_deviation_hz is not None:
-        viol += _nadir_violations(case, hz, r_up, r_dn, labels)
+        viol += _nadir_violations(case, hz, gain, r_up, r_dn, labels)
     return gain, r_up, r_dn, cost, viol
 
 
-def _nadir_violations(case, hz, r_up, r_dn, labels):
-    """Ramp-model nadir condition (docs/formulation.md): sum_i r_i / T_i over responding
-    providers (tripped or absent unit out) >= f_n dP^2 / (4 H N_max)."""
-    need = nadir_ramp_needed(case, hz)
-    T_act = np.where(np.isfinite(hz.T_act) & (hz.T_act > 0), hz.T_act, np.inf)
-    r = np.where((hz.sigma > 0)[:, None], r_up[hz.inst_t], r_dn[hz.inst_t]) * hz.avail[hz.inst_t]
-    M = len(hz.dP)
-    for arr in (hz.trip, getattr(hz, "absent", np.full(M, -1))):
-        m = np.nonzero(arr >= 0)[0]
-        r[m, arr[m]] = 0.0
-    ramp = (r / T_act[None, :]).sum(axis=1)
+def _nadir_violations(case, hz, gain, r_up, r_dn, labels):
+    """The nadir energy rows of the model (formulation.md section 15): what a provider
+    delivers by the nadir is its headroom, but no more than its droop asks for at the nadir
+    limit, K (N - d)^+. A row short by more than round-off is a broken limit (MW s short)."""
+    reach = gain * np.maximum(case.limits.max_nadir_deviation_hz - hz.d_hz, 0.0)[None, :]
+    short = nadir_shortfall(case, hz, np.minimum(r_up, reach), np.minimum(r_dn, reach))
     out = []
-    for m in np.nonzero(np.isfinite(need) & (hz.dP > 0) & (ramp < need * (1 - 1e-9) - 1e-9))[0]:
-        out.append(("nadir_ramp", hz.inst_name[m], hz.inst_name[m], labels[hz.inst_t[m]],
-                    float(ramp[m]), float(need[m]), "MW/s"))
+    for m in np.nonzero(np.isfinite(short) & (hz.dP > 0) & (short > 1e-6))[0]:
+        out.append(("nadir_energy", hz.inst_name[m], hz.inst_name[m], labels[hz.inst_t[m]],
+                    float(short[m]), 0.0, "MW s short"))
     return out

@@ -176,22 +176,15 @@ def apply_point(case: Case, point: dict[str, float]) -> Case:
                 events.loc[sel, "size_mw"] = float(value)
                 if "size_from_output" in events.columns:
                     events.loc[sel, "size_from_output"] = False
-            elif kind == "link":
-                links = links.copy()
-                links.loc[links["link"] == name, fld] = float(value)
-                s = series.get("links")
+            else:  # a link or area column; its per-period overrides give way to the value
+                frame = (links if kind == "link" else areas).copy()
+                frame.loc[frame[kind] == name, fld] = float(value)
+                links, areas = (frame, areas) if kind == "link" else (links, frame)
+                s = series.get(kind + "s")
                 if s is not None and fld in s.columns:
                     s = s.copy()
-                    s.loc[s["link"] == name, fld] = np.nan
-                    series["links"] = s
-            else:
-                areas = areas.copy()
-                areas.loc[areas["area"] == name, fld] = float(value)
-                s = series.get("areas")
-                if s is not None and fld in s.columns:
-                    s = s.copy()
-                    s.loc[s["area"] == name, fld] = np.nan
-                    series["areas"] = s
+                    s.loc[s[kind] == name, fld] = np.nan
+                    series[kind + "s"] = s
     return case.replace(limits=limits, units=units, areas=areas, links=links, events=events,
                         series=series)
 
@@ -215,32 +208,31 @@ def _failed(status: str, text: str) -> dict:
             "change_penalty": None, "binding_events": "", "binding_links": "", "error": text}
 
 
-def run_point(case: Case, index: int, point: dict[str, float], engine: str = ENGINE) -> dict:
-    """Solve one point; never raises (the failure is in the row)."""
+def _attempt(make_case, engine: str) -> dict:
+    """The row of one solve; never raises (the failure is in the row)."""
     from .solve import solve
 
-    t0 = time.perf_counter()
     try:
-        row = _row_of(solve(apply_point(case, point), engine=engine))
+        return _row_of(solve(make_case(), engine=engine))
     except InfeasibleError as exc:
-        row = _failed("infeasible", exc.shortfalls[0] if exc.shortfalls else str(exc))
+        return _failed("infeasible", exc.shortfalls[0] if exc.shortfalls else str(exc))
     except Exception as exc:  # one bad point must not stop a long study
-        row = _failed("error", f"{type(exc).__name__}: {exc}".splitlines()[0])
+        return _failed("error", f"{type(exc).__name__}: {exc}".splitlines()[0])
+
+
+def run_point(case: Case, index: int, point: dict[str, float], engine: str = ENGINE) -> dict:
+    """Solve one point of a sweep."""
+    t0 = time.perf_counter()
+    row = _attempt(lambda: apply_point(case, point), engine)
     return {"point": index, **point, **row, "solve_s": time.perf_counter() - t0}
 
 
 def run_case_folder(path: str, index: int, engine: str = ENGINE) -> dict:
     """Read and solve one case folder of a batch (the worker reads it from the path)."""
     from .reader import load_case
-    from .solve import solve
 
     t0 = time.perf_counter()
-    try:
-        row = _row_of(solve(load_case(path), engine=engine))
-    except InfeasibleError as exc:
-        row = _failed("infeasible", exc.shortfalls[0] if exc.shortfalls else str(exc))
-    except Exception as exc:
-        row = _failed("error", f"{type(exc).__name__}: {exc}".splitlines()[0])
+    row = _attempt(lambda: load_case(path), engine)
     return {"point": index, "case": Path(path).name, **row,
             "solve_s": time.perf_counter() - t0}
 

@@ -226,3 +226,32 @@ def test_uniform_keeps_droop_now_and_cli_writes_comparison(case_dir, tmp_path):
     rows = (out / "comparison.csv").read_text().splitlines()
     assert rows[0].startswith("policy,droop_rule,cost_per_h")
     assert np.isclose(float(rows[1].split(",")[2]), 0.3 * (3 * 400 + 200))
+
+
+def test_uniform_comparison_over_a_horizon(case_dir):
+    """The uniform case over two half-hour periods, Aldmere's up price 3 then 6 (one droop
+    block). Hand arithmetic as above: uniform s = 4 % in both periods breaks the link twice;
+    cost 0.5 * 0.2 * (3*500 + 250) + 0.5 * 0.2 * (6*500 + 250) = 500. The optimum keeps
+    Aldmere at 333.33 MW/Hz and Brookfell at 416.67 MW/Hz in both periods:
+    0.5 * 0.2 * (3*333.33 + 416.67) + 0.5 * 0.2 * (6*333.33 + 416.67) = 383.33."""
+    folder = write_case(case_dir(), settings(horizon={"period_hours": 0.5}),
+                        [unit("Aldmere_1", "Aldmere", 1000, 600, 4, 6, price_up=3),
+                         unit("Brookfell_1", "Brookfell", 500, 200, 2, 6, price_up=1)],
+                        [{"area": "Aldmere", "load_mw": 3000},
+                         {"area": "Brookfell", "load_mw": 3000}],
+                        [{"event": "step", "kind": "load_step", "area": "Brookfell",
+                          "size_mw": 150.0}],
+                        [{"link": "Ald-Brook", "from_area": "Aldmere", "to_area": "Brookfell",
+                          "reactance_pu": 0.05, "limit_mw": 80.0}])
+    (folder / "units_by_period.csv").write_text(csv_text([
+        {"period": 0, "unit": "Aldmere_1", "price_up_per_mw_h": 3},
+        {"period": 1, "unit": "Aldmere_1", "price_up_per_mw_h": 6}]))
+    case = optreserve.load_case(folder)
+    cmp = compare_uniform(case, solve(case))
+    s = cmp.summary.set_index("policy")
+    assert s.loc["uniform", "cost_total"] == pytest.approx(500.0, rel=1e-9)
+    assert s.loc["optimum", "cost_total"] == pytest.approx(0.1 * (9 * 1000 / 3 + 2 * 1250 / 3),
+                                                           rel=1e-6)
+    v = cmp.violations
+    assert list(zip(v["limit"], v["period"])) == [("link", "0"), ("link", "1")]
+    assert list(cmp.allocation["period"]) == ["0", "0", "1", "1"]

@@ -147,3 +147,34 @@ def test_batch_of_day_folders_dask_equals_serial(tmp_path, loopback_cluster):
     assert list(serial["objective_per_h"][:2]) == pytest.approx([100.0, 180.0], rel=1e-6)
     cols = [c for c in serial.columns if c != "solve_s"]
     assert serial[cols].equals(dist[cols])
+
+
+def test_apply_point_overrides_per_period_values_in_a_horizon(case_dir):
+    """In a horizon a varied link limit replaces its per-period limits, and price_scale
+    scales the per-period prices too (docs/case-format.md, Sweeps and batches)."""
+    from conftest import csv_text
+
+    from optreserve.sweep import apply_point
+
+    folder = write_case(case_dir(), settings(),
+                        [unit("Ald_1", "Aldmere", 1000, 600, 2, 10, price_up=3),
+                         unit("Brook_1", "Brookfell", 500, 200, 2, 10, price_up=1)],
+                        [{"area": "Aldmere", "load_mw": 3000},
+                         {"area": "Brookfell", "load_mw": 3000}],
+                        [{"event": "step", "kind": "load_step", "area": "Brookfell",
+                          "size_mw": 100.0}],
+                        [{"link": "AB", "from_area": "Aldmere", "to_area": "Brookfell",
+                          "reactance_pu": 0.05, "limit_mw": 300.0}])
+    (folder / "links_by_period.csv").write_text(csv_text([
+        {"period": 0, "link": "AB", "limit_mw": 250}, {"period": 1, "link": "AB",
+                                                       "limit_mw": 260}]))
+    (folder / "units_by_period.csv").write_text(csv_text([
+        {"period": 0, "unit": "Ald_1", "price_up_per_mw_h": 4},
+        {"period": 1, "unit": "Ald_1", "price_up_per_mw_h": 5}]))
+    case = optreserve.load_case(folder)
+    assert list(case.link_matrix("limit_mw")[:, 0]) == [250.0, 260.0]
+    new = apply_point(case, {"link:AB.limit_mw": 120.0, "price_scale": 2.0})
+    assert list(new.link_matrix("limit_mw")[:, 0]) == [120.0, 120.0]
+    assert new.unit_matrix("price_up_per_mw_h").tolist() == [[8.0, 2.0], [10.0, 2.0]]
+    # the original case is untouched (a sweep never changes its base case)
+    assert list(case.link_matrix("limit_mw")[:, 0]) == [250.0, 260.0]
