@@ -158,8 +158,11 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
         col.error(label, "contains a NUL byte: not a text CSV file", row=line)
         return None
     all_lines = text.splitlines()
-    numbered = [(k + 1, ln) for k, ln in enumerate(all_lines)
-                if ln.strip() and not ln.lstrip().startswith("#")]
+    if "#" not in text and "\n\n" not in text and all_lines and all_lines[0].strip():
+        numbered = list(enumerate(all_lines, start=1))  # nothing to skip (the common case)
+    else:
+        numbered = [(k + 1, ln) for k, ln in enumerate(all_lines)
+                    if ln.strip() and not ln.lstrip().startswith("#")]
     if not numbered:
         col.error(label, "is empty: a header row is required", row=1)
         return None
@@ -636,13 +639,13 @@ def _check_series(folder, series_raw, units, areas, links, events, settings, col
         for r in np.nonzero(~pd.Series(id_arr).isin(ids[key]).to_numpy())[0][:MAX_PROBLEMS]:
             col.error(file, f"unknown {idc} '{id_arr[r]}' (not in {key}.csv)", int(line_arr[r]),
                       idc)
-        pair = pd.Series(per_arr.astype(str)) + "\x00" + pd.Series(id_arr.astype(str))
-        dup = pair.duplicated(keep="first").to_numpy()
+        dup = df.duplicated(subset=["period", idc], keep="first").to_numpy()
         if dup.any():
-            first_line = dict(zip(pair[~dup], line_arr[~dup]))
+            first_line = {(p_, i_): ln for p_, i_, ln, d_ in zip(per_arr, id_arr, line_arr, dup)
+                          if not d_}
             for r in np.nonzero(dup)[0][:MAX_PROBLEMS]:
                 col.error(file, f"duplicate row for period '{per_arr[r]}' and {idc} "
-                          f"'{id_arr[r]}' (first at row {first_line[pair[r]]})",
+                          f"'{id_arr[r]}' (first at row {first_line[(per_arr[r], id_arr[r])]})",
                           int(line_arr[r]), idc)
         sets[key] = set(df["period"])
     ev_file = str(folder / "events.csv")
@@ -719,27 +722,36 @@ def _check_unit_series(ser, units, file, col):
 
 
 def _check_units(u: pd.DataFrame, file: str, area_ids: set[str] | None, col: _Collector):
-    for _, r in u.iterrows():
-        line = int(r["_line"])
-        if area_ids is not None and r["area"] and r["area"] not in area_ids:
-            col.error(file, f"unknown area '{r['area']}' (not in areas.csv)", line, "area")
-        cap, out, mn = r["capacity_mw"], r["output_mw"], r["min_output_mw"]
-        if not math.isnan(cap) and not math.isnan(mn) and mn > cap:
-            col.error(file, f"min_output_mw {mn:g} exceeds capacity_mw {cap:g}", line,
-                      "min_output_mw")
-        elif not any(math.isnan(x) for x in (cap, out, mn)) and not (mn <= out <= cap):
-            col.error(file, f"output_mw {out:g} outside [min_output_mw {mn:g}, capacity_mw "
-                      f"{cap:g}]", line, "output_mw")
-        lo, hi = r["droop_min_pct"], r["droop_max_pct"]
-        if lo > 0 and hi > 0 and lo > hi:
-            col.error(file, f"droop_min_pct {lo:g} exceeds droop_max_pct {hi:g}", line,
-                      "droop_min_pct")
-        elif lo > 0 and hi > 0 and (lo < DROOP_WARN_LOW_PCT or hi > DROOP_WARN_HIGH_PCT):
-            col.warn(file, f"droop band {lo:g}-{hi:g} % lies outside the usual 2-12 %", line,
-                     "droop_min_pct" if lo < DROOP_WARN_LOW_PCT else "droop_max_pct")
-        if r["deadband_mhz"] > DEADBAND_WARN_MHZ:
-            col.warn(file, f"dead band {r['deadband_mhz']:g} mHz is over 50 mHz", line,
-                     "deadband_mhz")
+    """Cross-column checks, vectorised; a loop only over the rows that fail."""
+    line = u["_line"].to_numpy()
+    area = u["area"].to_numpy(object)
+    cap, out, mn = (u[c].to_numpy(float) for c in ("capacity_mw", "output_mw", "min_output_mw"))
+    lo, hi = u["droop_min_pct"].to_numpy(float), u["droop_max_pct"].to_numpy(float)
+    db = u["deadband_mhz"].to_numpy(float)
+    if area_ids is not None:
+        for k in np.nonzero((area != "") & ~pd.Series(area).isin(area_ids).to_numpy())[0]:
+            col.error(file, f"unknown area '{area[k]}' (not in areas.csv)", int(line[k]), "area")
+    with np.errstate(invalid="ignore"):
+        over = mn > cap
+        outside = ~over & ~np.isnan(cap + out + mn) & ~((mn <= out) & (out <= cap))
+        crossed = (lo > 0) & (hi > 0) & (lo > hi)
+        unusual = (lo > 0) & (hi > 0) & ~crossed & ((lo < DROOP_WARN_LOW_PCT)
+                                                     | (hi > DROOP_WARN_HIGH_PCT))
+        wide = db > DEADBAND_WARN_MHZ
+    for k in np.nonzero(over)[0]:
+        col.error(file, f"min_output_mw {mn[k]:g} exceeds capacity_mw {cap[k]:g}", int(line[k]),
+                  "min_output_mw")
+    for k in np.nonzero(outside)[0]:
+        col.error(file, f"output_mw {out[k]:g} outside [min_output_mw {mn[k]:g}, capacity_mw "
+                  f"{cap[k]:g}]", int(line[k]), "output_mw")
+    for k in np.nonzero(crossed)[0]:
+        col.error(file, f"droop_min_pct {lo[k]:g} exceeds droop_max_pct {hi[k]:g}", int(line[k]),
+                  "droop_min_pct")
+    for k in np.nonzero(unusual)[0]:
+        col.warn(file, f"droop band {lo[k]:g}-{hi[k]:g} % lies outside the usual 2-12 %",
+                 int(line[k]), "droop_min_pct" if lo[k] < DROOP_WARN_LOW_PCT else "droop_max_pct")
+    for k in np.nonzero(wide)[0]:
+        col.warn(file, f"dead band {db[k]:g} mHz is over 50 mHz", int(line[k]), "deadband_mhz")
 
 
 def _check_links(lk: pd.DataFrame, file: str, area_ids: set[str] | None, col: _Collector):

@@ -261,40 +261,50 @@ def _num(v):
 
 def write_table(df: pd.DataFrame, path: Path) -> None:
     """Stable CSV: fixed column order, 6 decimals, no negative zero, true/false booleans,
-    empty cells for missing values. Formatted column by column (pandas' float formatting is
-    the slow part of writing a day of results)."""
-    cols = []
-    for c in df.columns:
-        v = df[c].to_numpy()
-        if v.dtype == bool:
-            cols.append(np.where(v, "true", "false").tolist())
-        elif np.issubdtype(v.dtype, np.floating):
-            r = np.round(v.astype(float), 6) + 0.0
-            # one formatting call for the whole column; missing values become empty cells
-            text = (("%.6f\n" * len(r)) % tuple(r.tolist())).split("\n")[:-1]
-            nan = np.isnan(r)
-            if nan.any():
-                arr = np.array(text, dtype=object)
-                arr[nan] = ""
-                text = arr.tolist()
-            cols.append(text)
-        else:
-            cols.append(["" if x is None or (isinstance(x, float) and x != x) else str(x)
-                         for x in v.tolist()])
+    empty cells for missing values. The whole table is formatted by one string-formatting
+    call (pandas' float formatting is the slow part of writing a day of results)."""
+    n = len(df)
     header = [str(c) for c in df.columns]
+    grid = np.empty((n, len(header)), dtype=object)
+    specs, text_cols = [], []
+    for k, c in enumerate(df.columns):
+        col = df[c]
+        v = col.to_numpy()
+        if v.dtype == bool:
+            grid[:, k] = np.where(v, "true", "false")
+            specs.append("%s")
+        elif pd.api.types.is_float_dtype(col):
+            r = np.round(v.astype(float), 6) + 0.0  # + 0.0 turns -0.0 into 0.0
+            nan = np.isnan(r)
+            if nan.any():  # formatted here so that missing values become empty cells
+                cells = np.array((("%.6f\n" * n) % tuple(r.tolist())).split("\n")[:-1],
+                                 dtype=object)
+                cells[nan] = ""
+                grid[:, k] = cells
+                specs.append("%s")
+            else:
+                grid[:, k] = r
+                specs.append("%.6f")
+        else:
+            missing = col.isna().to_numpy()
+            cells = col.astype(str).to_numpy(dtype=object)
+            if missing.any():
+                cells[missing] = ""
+            grid[:, k] = cells
+            text_cols.append(cells)
+            specs.append("%s")
     special = re.compile(r'[,"\r\n]')
-    text_cols = [col for col, k in zip(cols, df.columns)
-                 if not (df[k].dtype == bool or pd.api.types.is_float_dtype(df[k]))]
     plain = not any(special.search("\x1f".join(c)) for c in [header] + text_cols)
     with open(path, "w", newline="", encoding="utf-8") as fh:
-        if plain:  # nothing to quote: join directly (several times faster than csv.writer)
+        if plain:  # nothing to quote: one formatting pass over the whole table
             fh.write(",".join(header) + "\n")
-            if cols and cols[0]:
-                fh.write("\n".join(map(",".join, zip(*cols))) + "\n")
+            if n:
+                fh.write(((",".join(specs) + "\n") * n) % tuple(grid.ravel().tolist()))
         else:
             w = csv.writer(fh, lineterminator="\n")
             w.writerow(header)
-            w.writerows(zip(*cols))
+            for row in grid.tolist():
+                w.writerow([x if isinstance(x, str) else f"{x:.6f}" for x in row])
 
 
 def _move_into(tmp: Path, out: Path) -> None:
