@@ -285,7 +285,11 @@ def _typed_table(t: _Table, cols: list[Col], col: _Collector,
             default = np.nan if c.default is None else float(c.default)
             vals = np.where(empty | bad, default, num)
             if c.check is not None:
-                for r in np.nonzero(~empty & ~bad)[0]:
+                given = ~empty & ~bad
+                with np.errstate(invalid="ignore"):  # the common checks, vectorised
+                    suspect = (given & (vals <= 0) if c.check is _positive else
+                               given & (vals < 0) if c.check is _nonneg else given)
+                for r in np.nonzero(suspect)[0]:
                     if (msg := c.check(vals[r])) is not None:
                         col.error(t.file, f"{msg} (got {raw[r]})", int(lines[r]), c.name)
             df[c.name] = vals.astype(float)
