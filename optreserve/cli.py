@@ -13,7 +13,7 @@ from . import progress
 from .errors import CaseError, InfeasibleError, OptreserveError
 from .progress import TerminalStatus, use_colour
 from .reader import load_case
-from .results import CAUTION, Result, write_table
+from .results import CAUTION, Result, check_out, staged_output, write_table
 from .screen import event_capability
 
 EXIT_OK, EXIT_OTHER, EXIT_INPUT, EXIT_INFEASIBLE = 0, 1, 2, 3
@@ -166,19 +166,10 @@ class _OutputBusy(OptreserveError):
 
 
 def _write_diagnosis(exc: InfeasibleError, out_dir: Path, force: bool) -> None:
-    import shutil
-    import tempfile
-
-    out_dir.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.", dir=out_dir.parent))
-    try:
+    """diagnosis.csv, the only file an infeasible run writes (the folder was checked before
+    solving, so force only matters for a folder that already holds earlier results)."""
+    with staged_output(out_dir, force=True) as tmp:
         write_table(exc.diagnosis, tmp / "diagnosis.csv")
-        if not out_dir.exists():
-            tmp.rename(out_dir)
-        else:
-            (tmp / "diagnosis.csv").replace(out_dir / "diagnosis.csv")
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
 
 
 def _paint(text: str, code: str) -> str:
@@ -445,7 +436,7 @@ def _add_simulate_parser(sub) -> None:
 
 # ------------------------------------------------------------------ sweep and batch
 def cmd_sweep(args) -> int:
-    from .sweep import check_out, grid, parse_vary, run_sweep
+    from .sweep import grid, parse_vary, run_sweep
 
     check_out(Path(args.out), args.force)
     case = load_case(args.case)
@@ -459,7 +450,7 @@ def cmd_sweep(args) -> int:
 
 
 def cmd_batch(args) -> int:
-    from .sweep import case_folders, check_out, run_batch
+    from .sweep import case_folders, run_batch
 
     check_out(Path(args.out), args.force)
     folders = case_folders(Path(args.folder))

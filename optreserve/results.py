@@ -8,6 +8,7 @@ import re
 import os
 import shutil
 import tempfile
+from contextlib import contextmanager
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -66,7 +67,6 @@ class Result:
         T, N = gain.shape
         horizon = case.is_horizon
         labels = list(case.periods) if horizon else [None]
-        F = case.limits.max_settled_deviation_hz
         u = case.units
         K_b = lp.value(out.x, "K").reshape(hz.n_blocks, N)
         droop_b = np.where(K_b > 1e-9, case.droop_from_gain(np.where(K_b > 1e-9, K_b, 1.0)),
@@ -223,14 +223,7 @@ class Result:
         into with force=True, and even then nothing but these files is touched."""
         t0 = time.perf_counter()
         out = Path(out_dir)
-        if out.exists() and not out.is_dir():
-            raise OutputExistsError(f"{out}: exists and is not a folder")
-        if out.is_dir() and any(out.iterdir()) and not force:
-            raise OutputExistsError(f"{out}: folder is not empty; choose another --out or add "
-                                    "--force to replace optreserve's files in it")
-        out.parent.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
-        try:
+        with staged_output(out, force) as tmp:
             write_table(self.allocation, tmp / "allocation.csv")
             write_table(self.events, tmp / "events.csv")
             write_table(self.links, tmp / "links.csv")
@@ -246,9 +239,6 @@ class Result:
             self.timings_s["write"] = time.perf_counter() - t0
             self.timings_s["total"] = self.timings_s.get("total", 0.0) + self.timings_s["write"]
             (tmp / "summary.json").write_text(json.dumps(self.summary, indent=2) + "\n")
-            _move_into(tmp, out)
-        finally:
-            shutil.rmtree(tmp, ignore_errors=True)
         return out
 
 
@@ -305,6 +295,33 @@ def write_table(df: pd.DataFrame, path: Path) -> None:
             w.writerow(header)
             for row in grid.tolist():
                 w.writerow([x if isinstance(x, str) else f"{x:.6f}" for x in row])
+
+
+def check_out(out: Path, force: bool) -> None:
+    """Refuse a non-empty output folder without force (before any work is done)."""
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise OutputExistsError(f"{out}: exists and is not a folder")
+    if out.is_dir() and any(out.iterdir()) and not force:
+        raise OutputExistsError(f"{out}: folder is not empty; choose another --out or add "
+                                "--force to replace optreserve's files in it")
+
+
+@contextmanager
+def staged_output(out: Path, force: bool = False):
+    """Yield a temporary folder beside `out`; when the block ends normally its files move into
+    `out` all at once (a new folder is renamed into place). An exception or Ctrl-C leaves `out`
+    as it was. With force, only the files written here replace their namesakes in a non-empty
+    folder; nothing else there is touched."""
+    out = Path(out)
+    check_out(out, force)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
+    try:
+        yield tmp
+        _move_into(tmp, out)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
 
 
 def _move_into(tmp: Path, out: Path) -> None:

@@ -25,8 +25,6 @@ from __future__ import annotations
 import json
 import math
 import re
-import shutil
-import tempfile
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -41,7 +39,7 @@ from scipy.optimize import minimize_scalar
 from .case import Case
 from .errors import CaseError, OptreserveError, Problem
 from .reader import Col, _Collector, _read_csv, _typed_table
-from .results import CAUTION, OutputExistsError, _move_into, write_table
+from .results import CAUTION, staged_output, write_table
 from .settle import settle_instances
 
 # A first-order lag delivers 1 - exp(-4) = 98.2 % of a step at four time constants: the
@@ -528,14 +526,7 @@ class Simulation:
         (and then only these files are replaced)."""
         t0 = time.perf_counter()
         out = Path(out_dir)
-        if out.exists() and not out.is_dir():
-            raise OutputExistsError(f"{out}: exists and is not a folder")
-        if out.is_dir() and any(out.iterdir()) and not force:
-            raise OutputExistsError(f"{out}: folder is not empty; choose another --out or add "
-                                    "--force to replace optreserve's files in it")
-        out.parent.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
-        try:
+        with staged_output(out, force) as tmp:
             write_table(self.summary, tmp / SUMMARY_FILE)
             text = (tmp / SUMMARY_FILE).read_text(encoding="utf-8")
             (tmp / SUMMARY_FILE).write_text(f"# {CAUTION}\n" + text, encoding="utf-8")
@@ -553,9 +544,6 @@ class Simulation:
                    "timings_s": {k: round(float(v), 4) for k, v in self.timings_s.items()},
                    "caution": CAUTION}
             (tmp / SETTINGS_FILE).write_text(json.dumps(doc, indent=2) + "\n")
-            _move_into(tmp, out)
-        finally:
-            shutil.rmtree(tmp, ignore_errors=True)
         return out
 
 

@@ -21,9 +21,7 @@ import logging
 import math
 import os
 import re
-import shutil
 import sys
-import tempfile
 import time
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -33,7 +31,7 @@ import pandas as pd
 
 from .case import Case
 from .errors import InfeasibleError, OptreserveError
-from .results import CAUTION, OutputExistsError, _move_into, write_table
+from .results import CAUTION, staged_output, write_table
 
 LIMIT_KEYS = ("max_settled_deviation_hz", "full_activation_deviation_hz",
               "max_nadir_deviation_hz", "max_rocof_hz_per_s")
@@ -350,26 +348,12 @@ def _table(rows: list[dict], keys: list[str]) -> pd.DataFrame:
 
 
 # ------------------------------------------------------------------ writing
-def check_out(out: Path, force: bool) -> None:
-    """Refuse a non-empty output folder without force (before any work is done)."""
-    out = Path(out)
-    if out.exists() and not out.is_dir():
-        raise OutputExistsError(f"{out}: exists and is not a folder")
-    if out.is_dir() and any(out.iterdir()) and not force:
-        raise OutputExistsError(f"{out}: folder is not empty; choose another --out or add "
-                                "--force to replace optreserve's files in it")
-
-
 def write_study(table: pd.DataFrame, out: Path, name: str, keys: list[str], meta: dict,
                 force: bool = False) -> list[str]:
     """Write NAME.csv (and NAME.parquet for large tables), a cost plot NAME.png when one or
     two keys vary, and NAME.json (what was run, the counts, the caution); all at once."""
-    out = Path(out)
-    check_out(out, force)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
     written = []
-    try:
+    with staged_output(Path(out), force) as tmp:
         write_table(table, tmp / f"{name}.csv")
         written.append(f"{name}.csv")
         if len(table) >= PARQUET_MIN_ROWS:
@@ -383,9 +367,6 @@ def write_study(table: pd.DataFrame, out: Path, name: str, keys: list[str], meta
                "files": written + [f"{name}.json"], "caution": CAUTION}
         (tmp / f"{name}.json").write_text(json.dumps(doc, indent=2) + "\n")
         written.append(f"{name}.json")
-        _move_into(tmp, out)
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
     return written
 
 
