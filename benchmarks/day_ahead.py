@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import platform
 import resource
 import subprocess
@@ -20,6 +21,8 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+
+from machine import cpu_model
 
 
 def run_one(units, areas, links, periods, events, seed, mode, mip_gap, time_limit) -> dict:
@@ -78,7 +81,7 @@ def main() -> int:
         r = json.loads(out.stdout.strip().splitlines()[-1])
         rows.append(r)
         print(f"done T={T} {mode}: total {r['total_s']:.2f} s", file=sys.stderr)
-    print(f"machine: {platform.processor() or platform.machine()}, {platform.system()} "
+    print(f"machine: {cpu_model()}, {os.cpu_count()} cores, {platform.system()} "
           f"{platform.release()}, Python {platform.python_version()}")
     print(f"case: {args.units} units, {args.areas} areas, {args.links} links, {args.events} "
           f"events per period, seed {args.seed}; MILP gap target {args.mip_gap}\n")

@@ -21,17 +21,11 @@ import tempfile
 import time
 from pathlib import Path
 
+from machine import cpu_model
+
 import numpy as np
 
 
-def cpu_model() -> str:
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or platform.machine()
 
 
 def every_provider(case, allocation):

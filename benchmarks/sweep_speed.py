@@ -20,17 +20,11 @@ import sys
 import time
 from pathlib import Path
 
+from machine import cpu_model
+
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def cpu_model() -> str:
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
 
 
 def main() -> int:
