@@ -16,7 +16,7 @@ import pandas as pd
 
 from .case import Case, DroopSettings
 from .errors import CaseError, OptreserveError, Problem
-from .model import Horizon, ModelInfo, nadir_shortfall, prepare
+from .model import TIE_BREAK_PER_MW_H, Horizon, ModelInfo, nadir_shortfall, prepare
 from .program import LinearProgram
 from .results import Result
 from .solve import evaluate_allocation, solve
@@ -223,6 +223,9 @@ def _extension(case: Case, now: Today, stage: _Stage, keep: np.ndarray,
             lp.add_rows("retune_hold_droop", 1, np.zeros(len(coef), np.int64), Z.idx(), coef,
                         hi=caps["droop"] - const + STAGE_TOL * max(1.0, caps["droop"]))
         cost = lp.cost.copy()
+        hours = np.repeat(hz.hours, N)
+        for name in ("r_up", "r_dn"):  # the real prices: without the model's tie-break
+            cost[lp.var_blocks[name].slice] -= TIE_BREAK_PER_MW_H * hours
         if "cost" in caps:
             nz = np.nonzero(cost)[0]
             lp.add_rows("retune_hold_cost", 1, np.zeros(len(nz), np.int64), nz, cost[nz],

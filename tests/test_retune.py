@@ -144,3 +144,14 @@ def test_retune_cli_writes_proposal(tmp_path, capsys):
             "headroom_up_now_mw", "headroom_up_proposed_mw"} <= set(prop.columns)
     assert (out / "before_after.csv").is_file() and (out / "allocation.csv").is_file()
     assert np.isclose(prop.set_index("unit").loc["Fen_A", "droop_proposed_pct"], 4.3)
+
+
+def test_reduce_cost_with_free_headroom_still_solves(tmp_path):
+    """Every headroom price zero: the least cost is 0 whatever the settings, so holding the
+    cost stage must not squeeze headroom (regression: the model's tie-break price must not
+    count in the stage's cost row). Today is safe (520 >= 500 MW/Hz): no change needed."""
+    case = _fenmoor(tmp_path / "c", size_mw=100.0)
+    units = case.units.assign(price_up_per_mw_h=0.0)
+    p = retune(case.replace(units=units), reduce_cost=True)
+    assert p.cost_after_per_h == 0.0
+    assert p.changed.empty
