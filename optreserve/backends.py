@@ -17,6 +17,10 @@ from .program import LinearProgram
 # Above this many nonzeros "auto" loads HiGHS in bulk: per-expression Pyomo machinery, not the
 # solver, dominates there (docs/performance.md).
 AUTO_BULK_NONZEROS = 20_000
+# HiGHS runs single-threaded: measured on these models (docs/performance.md) its parallel
+# search gains nothing while its helper thread takes a second core; studies run points in
+# parallel instead (sweep.py). OPTRESERVE_HIGHS_THREADS overrides (0 lets HiGHS choose).
+HIGHS_THREADS = int(os.environ.get("OPTRESERVE_HIGHS_THREADS", "1"))
 
 
 @dataclass
@@ -68,6 +72,7 @@ def _options(h, time_limit, mip_gap, verbose, log_file=None):
     if log_file is not None:
         h.setOptionValue("log_file", str(log_file))
     h.setOptionValue("random_seed", 0)
+    h.setOptionValue("threads", HIGHS_THREADS)
     if time_limit is not None:
         h.setOptionValue("time_limit", float(time_limit))
     if mip_gap is not None:
@@ -109,6 +114,9 @@ def solve_highs(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
     finally:
         warnings = solver_warnings(log.name)
         os.unlink(log.name)
+    if start is not None:  # HiGHS checks a warm start and reports why it was not feasible
+        warnings = [w for w in warnings if not any(
+            k in w for k in ("nfeasib", "Assessing feasibility", "Solution has"))]
     out.emit_time_s = emit
     out.warnings = warnings
     return out
@@ -182,7 +190,8 @@ def solve_pyomo(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
         kwargs["rel_gap"] = float(mip_gap)
     log = tempfile.NamedTemporaryFile(prefix="optreserve-highs-", suffix=".log", delete=False)
     log.close()
-    kwargs["solver_options"] = {"log_file": log.name, "random_seed": 0}
+    kwargs["solver_options"] = {"log_file": log.name, "random_seed": 0,
+                                "threads": HIGHS_THREADS}
     progress.step("HiGHS via Pyomo: solving" + (" (mixed-integer)" if lp.is_mip else ""),
                   log.name)
     t1 = time.perf_counter()
