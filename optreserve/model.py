@@ -116,7 +116,6 @@ class Horizon:
     Built once per solve and reused by every dead-band iteration."""
 
     case: Case
-    snaps: list  # unused (kept empty): everything is stacked in arrays
     T: int
     hours: np.ndarray  # (T,)
     block: np.ndarray  # (T,) droop block of each period
@@ -223,7 +222,7 @@ def prepare(case: Case) -> Horizon:
     damping = case.area_matrix("load_mw").astype(float) * case.area_matrix(
         "load_damping_pct_per_hz").astype(float) / 100.0
     return Horizon(
-        case=case, snaps=[], T=T, hours=case.hours(), block=block, n_blocks=B,
+        case=case, T=T, hours=case.hours(), block=block, n_blocks=B,
         K_lo=u0.K_lo, K_band=case.gain_from_droop(case.units["droop_min_pct"]),
         d_hz=u0.d_hz, a_act=u0.a_act, area=u0.area, K_now=u0.K_now,
         K_hi_t=K_hi_t, avail=avail, R_up=R_up, R_dn=R_dn,
@@ -482,20 +481,6 @@ def _rows_settled(lp, hz: Horizon, K, G, ginfo, F_m, elastic, P=None):
         rows, cols, vals = np.r_[rows, np.arange(M)], np.r_[cols, S.idx()], np.r_[
             vals, np.ones(M)]
     lp.add_rows("settled", M, rows, cols, vals, lo=lo)
-
-
-def nadir_ramp_needed(case: Case, hz: Horizon) -> np.ndarray:
-    """Per instance the aggregate ramp rate [MW/s] the nadir limit needs. A step loss dP met
-    by response ramping at rate rho, inertia H (MW s), no damping, reaches its nadir when the
-    response equals dP, at t* = dP / rho, with |df| = f_n dP^2 / (4 H rho) (ramp model;
-    docs/formulation.md). |df| <= N  <=>  rho >= f_n dP^2 / (4 H N)."""
-    N_max = case.limits.max_nadir_deviation_hz
-    dP = hz.dP
-    if hz.co_opt and hz.dP_var is not None:  # a dispatched trip: its capacity, to stay linear
-        dP = np.where(hz.dP_var >= 0, hz.cap[np.maximum(hz.dP_var, 0)], dP)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        need = case.nominal_frequency_hz * dP ** 2 / (4.0 * hz.H_sys * N_max)
-    return np.where(dP > 0, need, 0.0)
 
 
 # Nadir rows: time points per event (fewer for long horizons to keep the model small) and
