@@ -97,8 +97,8 @@ def cmd_solve(args) -> int:
 
     t0 = time.perf_counter()
     out_dir = Path(args.out) if args.out else None
-    if out_dir is not None and out_dir.is_dir() and any(out_dir.iterdir()) and not args.force:
-        raise _OutputBusy(out_dir)
+    if out_dir is not None:
+        check_out(out_dir, args.force)
     if getattr(args, "report", False) and out_dir is None:
         print("error: --report needs --out DIR (the report is written next to the results)",
               file=sys.stderr)
@@ -155,14 +155,6 @@ def _solve_report(out_dir: Path, args) -> Path:
     from .report import build_report
 
     return build_report(out_dir, case_dir=args.case)
-
-
-class _OutputBusy(OptreserveError):
-    exit_code = EXIT_INPUT
-
-    def __init__(self, out: Path):
-        super().__init__(f"{out}: folder is not empty; choose another --out or add --force to "
-                         "replace optreserve's files in it")
 
 
 def _write_diagnosis(exc: InfeasibleError, out_dir: Path, force: bool) -> None:
@@ -234,8 +226,7 @@ def cmd_generate(args) -> int:
     from .generate import Spec, generate
 
     out = Path(args.out)
-    if out.exists() and any(out.iterdir()) and not args.force:
-        raise _OutputBusy(out)
+    check_out(out, args.force)
     try:
         spec = Spec(units=args.units, areas=args.areas, links=args.links, periods=args.periods,
                     events=args.events, seed=args.seed)
@@ -280,8 +271,8 @@ def cmd_retune(args) -> int:
     from .retune import retune
 
     out_dir = Path(args.out) if args.out else None
-    if out_dir is not None and out_dir.is_dir() and any(out_dir.iterdir()) and not args.force:
-        raise _OutputBusy(out_dir)
+    if out_dir is not None:
+        check_out(out_dir, args.force)
     case = load_case(args.case)
     _warn(case, args.quiet)
     keep = tuple(u.strip() for u in (args.keep or "").split(",") if u.strip())
@@ -375,8 +366,7 @@ def cmd_simulate(args) -> int:
     from .simulate import read_allocation, simulate
 
     out_dir = Path(args.out)
-    if out_dir.is_dir() and any(out_dir.iterdir()) and not args.force:
-        raise _OutputBusy(out_dir)
+    check_out(out_dir, args.force)
     if args.duration is not None and not args.duration > 0.5:
         print("error: --duration must be more than 0.5 s", file=sys.stderr)
         return EXIT_INPUT

@@ -601,37 +601,49 @@ def flow_weights(hz: Horizon, inst=None):
     return (F0 - Fmax + shift) / Fmax, (F0 + Fmax + shift) / Fmax
 
 
-def _rows_flows(lp, hz: Horizon, K, G, ginfo, x_hat, elastic):
-    """Exact post-event link limits in the multiply-by-beta' form, beta'_a = sum_k c_k G_ak
-    (- c_j K_j for a tripped or absent provider j, in j's area) + D_a, with c = (1 - d/x)^+
-    at the settled guess x."""
+def _response_terms(hz: Horizon, K, G, ginfo, x_hat, live):
+    """What the flow rows of the given instances need of the responding gains: the effective
+    factors c (instance x class), the aggregate columns of each instance's group, and the
+    providers out of each instance (tripped or absent) with their factor and gain column."""
     group_of_t, n_a, n_k, classes = ginfo
-    N = hz.N
-    n_l = hz.F0.shape[1]
-    live = np.nonzero(hz.dP > 0)[0]
-    ne = len(live)
-    W_up, W_lo = flow_weights(hz, live)
     c = effective_factor(classes, x_hat[live])  # (E', K)
-    D = hz.D_a[hz.inst_t[live]]  # (E', A)
     g = group_of_t[hz.inst_t[live]]
     gcols = G.idx((g[:, None] * n_a * n_k + np.arange(n_a * n_k)[None, :]))  # (E', A*K)
     te_abs, j = _removed(hz, live)
     te = np.searchsorted(live, te_abs)
     cj = np.clip(1.0 - hz.d_hz[j] / np.where(x_hat[te_abs] > 0, x_hat[te_abs], np.inf), 0, 1)
-    kcol = K.idx(hz.block[hz.inst_t[te_abs]] * N + j)
+    kcol = K.idx(hz.block[hz.inst_t[te_abs]] * hz.N + j)
+    return c, gcols, te, j, cj, kcol
+
+
+def _rows_beta(lp, hz: Horizon, terms, ne, n_a, n_k) -> np.ndarray:
+    """beta'_ea = sum_k c_ek G_gak - c_j K_j (providers out, in their area), one auxiliary
+    column per (instance, area); returns the columns as (E', A)."""
+    c, gcols, te, j, cj, kcol = terms
+    Bv = lp.add_vars("beta", ne * n_a, -np.inf, np.inf)
+    rows = np.r_[np.arange(ne * n_a), np.repeat(np.arange(ne * n_a), n_k), te * n_a + hz.area[j]]
+    cols = np.r_[Bv.idx(), gcols.reshape(-1), kcol]
+    vals = np.r_[np.ones(ne * n_a), -np.repeat(c, n_a, axis=0).reshape(-1), cj]
+    lp.add_rows("beta_def", ne * n_a, rows, cols, vals, lo=0.0, hi=0.0)
+    return Bv.idx().reshape(ne, n_a)
+
+
+def _rows_flows(lp, hz: Horizon, K, G, ginfo, x_hat, elastic):
+    """Exact post-event link limits in the multiply-by-beta' form, beta'_a = sum_k c_k G_ak
+    (- c_j K_j for a tripped or absent provider j, in j's area) + D_a, with c = (1 - d/x)^+
+    at the settled guess x."""
+    _, n_a, n_k, _ = ginfo
+    n_l = hz.F0.shape[1]
+    live = np.nonzero(hz.dP > 0)[0]
+    ne = len(live)
+    W_up, W_lo = flow_weights(hz, live)
+    D = hz.D_a[hz.inst_t[live]]  # (E', A)
+    terms = _response_terms(hz, K, G, ginfo, x_hat, live)
+    c, gcols, te, j, cj, kcol = terms
     if n_k > 1:
         # several dead-band classes: one auxiliary beta'_ea per (event, area) keeps each flow
         # row at A terms instead of A x classes (the dominant block of the model)
-        Bv = lp.add_vars("beta", ne * n_a, -np.inf, np.inf)
-        rows = np.r_[np.arange(ne * n_a), np.repeat(np.arange(ne * n_a), n_k)]
-        cols = np.r_[Bv.idx(), gcols.reshape(-1)]
-        vals = np.r_[np.ones(ne * n_a), -np.repeat(c, n_a, axis=0).reshape(-1)]
-        if len(te):
-            rows = np.r_[rows, te * n_a + hz.area[j]]
-            cols = np.r_[cols, kcol]
-            vals = np.r_[vals, cj]
-        lp.add_rows("beta_def", ne * n_a, rows, cols, vals, lo=0.0, hi=0.0)
-        bcols = Bv.idx().reshape(ne, n_a)
+        bcols = _rows_beta(lp, hz, terms, ne, n_a, n_k)
     for name, W, sense in (("flow_hi", W_up, "hi"), ("flow_lo", W_lo, "lo")):
         rhs = -(W * D[:, None, :]).sum(axis=2).reshape(-1)
         if n_k > 1:
@@ -725,23 +737,12 @@ def _rows_flows_dispatch(lp, hz: Horizon, K, G, ginfo, x_hat, elastic, pcol):
     - dP Phi_l,ae)  within +-Fmax, linear in the gains, outputs and dP, and exact once the
     guess equals the independently computed settled deviation (the same fixed point as for
     dead bands)."""
-    group_of_t, n_a, n_k, classes = ginfo
-    N = hz.N
+    _, n_a, n_k, _ = ginfo
     L = hz.F0.shape[1]
     live = np.nonzero((hz.dP > 0) | (hz.dP_var >= 0))[0]
     ne = len(live)
     t = hz.inst_t[live]
-    c = effective_factor(classes, x_hat[live])
-    g = group_of_t[t]
-    gcols = G.idx((g[:, None] * n_a * n_k + np.arange(n_a * n_k)[None, :]))
-    te_abs, j = _removed(hz, live)
-    te = np.searchsorted(live, te_abs)
-    cj = np.clip(1.0 - hz.d_hz[j] / np.where(x_hat[te_abs] > 0, x_hat[te_abs], np.inf), 0, 1)
-    Bv = lp.add_vars("beta", ne * n_a, -np.inf, np.inf)
-    rows = np.r_[np.arange(ne * n_a), np.repeat(np.arange(ne * n_a), n_k), te * n_a + hz.area[j]]
-    cols = np.r_[Bv.idx(), gcols.reshape(-1), K.idx(hz.block[hz.inst_t[te_abs]] * N + j)]
-    vals = np.r_[np.ones(ne * n_a), -np.repeat(c, n_a, axis=0).reshape(-1), cj]
-    lp.add_rows("beta_def", ne * n_a, rows, cols, vals, lo=0.0, hi=0.0)
+    bcols = _rows_beta(lp, hz, _response_terms(hz, K, G, ginfo, x_hat, live), ne, n_a, n_k)
     PA = lp.var_blocks["p_area"]
     Phi = hz.Phi[t]  # (E, L, A)
     Fmax = hz.Fmax[t]  # (E, L)
@@ -758,7 +759,7 @@ def _rows_flows_dispatch(lp, hz: Horizon, K, G, ginfo, x_hat, elastic, pcol):
     rows = np.r_[np.repeat(k, n_a), np.repeat(k, n_a)]
     cols = np.r_[PA.idx((t[:, None, None] * n_a + np.arange(n_a)[None, None, :]
                          + 0 * np.arange(L)[None, :, None]).reshape(-1)),
-                 np.repeat(Bv.idx().reshape(ne, n_a), L, axis=0).reshape(-1)]
+                 np.repeat(bcols, L, axis=0).reshape(-1)]
     vals = np.r_[(Phi / Fmax[:, :, None]).reshape(-1),
                  (sig[:, None, None] * xh[:, None, None] * Phi / Fmax[:, :, None]).reshape(-1)]
     mv = np.nonzero(hz.dP_var[live] >= 0)[0]

@@ -85,7 +85,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
                     extend(e_lp, e_info)
                 e_out = solve_program(e_lp, engine="highspy")
                 if e_out.x is not None:
-                    guess = np.abs(_exact_deviation(e_info, e_lp, e_out.x))
+                    guess = np.abs(exact_points(e_info, e_lp, e_out.x).deviation_hz)
                     x_hat = np.where((hz.dP > 0) & np.isfinite(guess) & (guess > 0), guess,
                                      info.x_hat)
                     iterations = 0
@@ -245,10 +245,6 @@ def evaluate_allocation(case: Case, hz: Horizon, gain, r_up, r_dn) -> BatchPoint
         hz.D_a, hz.F0, [apos[a] for a in case.links["from_area"]],
         [apos[a] for a in case.links["to_area"]],
         case.link_matrix("reactance_pu").astype(float), absent=hz.absent)
-
-
-def _exact_deviation(info, lp, x) -> np.ndarray:
-    return exact_points(info, lp, x).deviation_hz
 
 
 def model_beta(lp: LinearProgram, info: ModelInfo, x: np.ndarray) -> np.ndarray:
