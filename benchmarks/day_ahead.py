@@ -27,7 +27,7 @@ from machine import cpu_model
 
 def run_one(units, areas, links, periods, events, seed, mode, mip_gap, time_limit) -> dict:
     import optreserve
-    from optreserve.generate import Spec, generate
+    from optreserve.studies.generate import Spec, generate
 
     with tempfile.TemporaryDirectory() as tmp:
         case_dir = generate(Spec(units, areas, links, periods, events, seed), Path(tmp) / "case")

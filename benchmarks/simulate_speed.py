@@ -58,8 +58,8 @@ def main() -> int:
     args = p.parse_args()
 
     import optreserve
-    from optreserve.generate import Spec, generate
-    from optreserve.simulate import simulate
+    from optreserve.studies.generate import Spec, generate
+    from optreserve.dynamics.simulate import simulate
 
     rows = []
     with tempfile.TemporaryDirectory() as tmp:

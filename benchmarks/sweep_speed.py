@@ -40,7 +40,7 @@ def main() -> int:
     import pandas as pd
 
     import optreserve
-    from optreserve.sweep import parse_vary, run_sweep
+    from optreserve.studies.sweep import parse_vary, run_sweep
 
     case = optreserve.load_case(ROOT / "instances" / "demo-tri-valley")
     link = "link:ambrith-orlesmouth.limit_mw=" + ("680:870:10" if not args.quick else "680:860:20")

@@ -11,18 +11,18 @@ Results are planning studies, not operating instructions.
 
 __version__ = "0.1.0"
 
-from .case import Case  # noqa: E402
-from .errors import (  # noqa: E402
+from optreserve.case.data import Case  # noqa: E402
+from optreserve.errors import (  # noqa: E402
     CaseError,
     InfeasibleError,
     OptreserveError,
     SolverError,
     VerificationError,
 )
-from .reader import load_case  # noqa: E402
-from .results import Result  # noqa: E402
-from .screen import event_capability  # noqa: E402
-from .solve import solve  # noqa: E402
+from optreserve.case.reader import load_case  # noqa: E402
+from optreserve.output.results import Result  # noqa: E402
+from optreserve.solver.screen import event_capability  # noqa: E402
+from optreserve.solver.run import solve  # noqa: E402
 
 __all__ = [
     "Case",

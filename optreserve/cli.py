@@ -8,13 +8,13 @@ import sys
 import time
 from pathlib import Path
 
-from . import __version__
-from . import progress
-from .errors import CaseError, InfeasibleError, OptreserveError
-from .progress import TerminalStatus, use_colour
-from .reader import load_case
-from .results import CAUTION, Result, check_out, staged_output, write_table
-from .screen import event_capability
+from optreserve import __version__
+from optreserve import progress
+from optreserve.errors import CaseError, InfeasibleError, OptreserveError
+from optreserve.progress import TerminalStatus, use_colour
+from optreserve.case.reader import load_case
+from optreserve.output.results import CAUTION, Result, check_out, staged_output, write_table
+from optreserve.solver.screen import event_capability
 
 EXIT_OK, EXIT_OTHER, EXIT_INPUT, EXIT_INFEASIBLE = 0, 1, 2, 3
 
@@ -93,7 +93,7 @@ def cmd_check(args) -> int:
 
 # ------------------------------------------------------------------ solve
 def cmd_solve(args) -> int:
-    from .solve import solve
+    from optreserve.solver.run import solve
 
     t0 = time.perf_counter()
     out_dir = Path(args.out) if args.out else None
@@ -143,7 +143,7 @@ def cmd_solve(args) -> int:
 def _compare(case, result):
     """--compare uniform: the uniform-droop policy against the optimum (compare.py); its
     tables are written with the result."""
-    from .compare import compare_uniform
+    from optreserve.studies.compare import compare_uniform
 
     cmp = compare_uniform(case, result)
     result.extra_files.update({"comparison.csv": cmp.summary, "comparison.json": cmp.to_json(),
@@ -152,7 +152,7 @@ def _compare(case, result):
 
 
 def _solve_report(out_dir: Path, args) -> Path:
-    from .report import build_report
+    from optreserve.output.report import build_report
 
     return build_report(out_dir, case_dir=args.case)
 
@@ -223,7 +223,7 @@ def _print_result(result: Result, out_dir: Path | None) -> None:
 
 # ------------------------------------------------------------------ generate
 def cmd_generate(args) -> int:
-    from .generate import Spec, generate
+    from optreserve.studies.generate import Spec, generate
 
     out = Path(args.out)
     check_out(out, args.force)
@@ -243,7 +243,7 @@ def cmd_generate(args) -> int:
 
 # ------------------------------------------------------------------ report
 def cmd_report(args) -> int:
-    from .report import build_report
+    from optreserve.output.report import build_report
 
     path = build_report(args.result, case_dir=args.case)
     if not args.quiet:
@@ -268,7 +268,7 @@ def _add_report_parser(sub) -> None:
 
 # ------------------------------------------------------------------ retune
 def cmd_retune(args) -> int:
-    from .retune import retune
+    from optreserve.studies.retune import retune
 
     out_dir = Path(args.out) if args.out else None
     if out_dir is not None:
@@ -363,7 +363,7 @@ def _add_retune_parser(sub) -> None:
 
 # ------------------------------------------------------------------ simulate
 def cmd_simulate(args) -> int:
-    from .simulate import read_allocation, simulate
+    from optreserve.dynamics.simulate import read_allocation, simulate
 
     out_dir = Path(args.out)
     check_out(out_dir, args.force)
@@ -426,7 +426,7 @@ def _add_simulate_parser(sub) -> None:
 
 # ------------------------------------------------------------------ sweep and batch
 def cmd_sweep(args) -> int:
-    from .sweep import grid, parse_vary, run_sweep
+    from optreserve.studies.sweep import grid, parse_vary, run_sweep
 
     check_out(Path(args.out), args.force)
     case = load_case(args.case)
@@ -440,7 +440,7 @@ def cmd_sweep(args) -> int:
 
 
 def cmd_batch(args) -> int:
-    from .sweep import case_folders, run_batch
+    from optreserve.studies.sweep import case_folders, run_batch
 
     check_out(Path(args.out), args.force)
     folders = case_folders(Path(args.folder))
@@ -451,7 +451,7 @@ def cmd_batch(args) -> int:
 
 
 def _run_study(args, name, title, keys, run, meta) -> int:
-    from .sweep import ENGINE, default_workers, write_study
+    from optreserve.studies.sweep import ENGINE, default_workers, write_study
 
     if args.workers is not None and args.workers < 1:
         print("error: --workers must be at least 1", file=sys.stderr)

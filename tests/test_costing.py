@@ -17,7 +17,7 @@ from conftest import build_case, csv_text, settings, unit, write_case
 
 import optreserve
 from optreserve.cli import main
-from optreserve.compare import compare_uniform
+from optreserve.studies.compare import compare_uniform
 
 
 def solve(case):

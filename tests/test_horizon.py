@@ -15,8 +15,8 @@ import pytest
 from conftest import csv_text, settings, write_case
 
 import optreserve
-from optreserve.generate import Spec, generate
-from optreserve.model import build_model
+from optreserve.studies.generate import Spec, generate
+from optreserve.model.rows import build_model
 
 
 def _three_period_case(folder, hold=None):
@@ -152,7 +152,7 @@ def test_horizon_milp_matches_scipy_milp(tmp_path):
                integrality=lp.integer.astype(int), bounds=Bounds(lp.col_lo, lp.col_hi),
                options={"mip_rel_gap": 0.0})
     assert ref.status == 0
-    from optreserve.backends import solve_highs
+    from optreserve.solver.backends import solve_highs
 
     ours = solve_highs(lp, mip_gap=0.0)
     assert ours.objective == pytest.approx(ref.fun, rel=1e-6, abs=1e-6)

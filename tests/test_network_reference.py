@@ -9,7 +9,7 @@ from conftest import build_case, settings, unit
 from refcalc import dc_flows, event_response
 
 import optreserve
-from optreserve.network import ptdf
+from optreserve.network.ptdf import ptdf
 
 AREAS = ["Hollin", "Quarrow", "Skelby", "Tarnmouth"]
 

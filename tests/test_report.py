@@ -22,7 +22,7 @@ from conftest import settings, unit, write_case
 
 import optreserve
 from optreserve.cli import main
-from optreserve.report import (
+from optreserve.output.report import (
     REPORT_NAME,
     ReportError,
     build_report,

@@ -15,8 +15,8 @@ from conftest import settings, write_case
 import optreserve
 from optreserve.cli import main
 from optreserve.errors import InfeasibleError
-from optreserve.model import prepare
-from optreserve.retune import retune, violations, with_provider_loss
+from optreserve.model.rows import prepare
+from optreserve.studies.retune import retune, violations, with_provider_loss
 
 
 def _fenmoor(folder, size_mw=110.0):

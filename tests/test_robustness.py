@@ -16,7 +16,7 @@ from conftest import settings, write_case
 
 import optreserve
 from optreserve.cli import main
-from optreserve.generate import Spec, generate
+from optreserve.studies.generate import Spec, generate
 
 
 def _wide(folder):
@@ -121,7 +121,7 @@ def test_non_empty_out_is_left_alone_and_force_keeps_user_files(tmp_path):
 def test_interrupted_write_leaves_no_half_written_folder(tmp_path, monkeypatch):
     """Ctrl-C while files are written: the output folder does not appear at all."""
     res = optreserve.solve(optreserve.load_case(_wide(tmp_path / "c")))
-    import optreserve.results as results
+    import optreserve.output.results as results
 
     real = results.write_table
     calls = {"n": 0}

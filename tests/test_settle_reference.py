@@ -11,7 +11,7 @@ import pytest
 from conftest import build_case, settings, unit
 from refcalc import event_response, settled_deviation
 
-from optreserve.settle import settle_case, settle_deviation
+from optreserve.verify.settle import settle_case, settle_deviation
 
 BIG = 1.0e6  # headroom that never saturates
 
@@ -231,7 +231,7 @@ def test_settle_batch_matches_brentq(seed):
     """The vectorised settle used by the solver's verification, against
     scipy.optimize.brentq on the same balance, for many events at once (dead bands,
     saturating headroom, with and without load damping)."""
-    from optreserve.settle import settle_batch
+    from optreserve.verify.settle import settle_batch
 
     rng = np.random.default_rng(2000 + seed)
     M, n = 12, int(rng.integers(1, 9))

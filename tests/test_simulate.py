@@ -18,7 +18,7 @@ from scipy import signal
 
 import optreserve
 from optreserve import cli
-from optreserve.simulate import simulate, swing_response
+from optreserve.dynamics.simulate import simulate, swing_response
 
 DEMO = Path(__file__).resolve().parents[1] / "instances" / "demo-tri-valley"
 

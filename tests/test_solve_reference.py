@@ -14,7 +14,7 @@ from refcalc import event_response
 from scipy.optimize import Bounds, LinearConstraint, linprog, milp
 
 import optreserve
-from optreserve.model import build_model
+from optreserve.model.rows import build_model
 
 ENGINE = "highspy"  # bulk load: fast; the Pyomo emitter is compared once in test (b)
 
@@ -163,7 +163,7 @@ def test_pyomo_and_highspy_emitters_give_the_same_optimum(case_dir, seed, steps)
 @pytest.mark.parametrize("seed,steps", [(3, False), (4, True), (5, False), (6, True)])
 def test_milp_optimum_equals_scipy_milp(case_dir, seed, steps):
     """scipy.optimize.milp as reference optimiser on the same LinearProgram
-    (optreserve.model.build_model): its optimum equals the objective optreserve reports, and
+    (optreserve.model.rows.build_model): its optimum equals the objective optreserve reports, and
     optreserve's own solution is feasible for the program within solver tolerances."""
     case = random_case(case_dir(), seed, steps=steps)
     lp, _ = build_model(case)

@@ -15,7 +15,7 @@ from conftest import settings, unit, write_case
 
 import optreserve
 from optreserve.cli import main
-from optreserve.sweep import SweepError, parse_vary, run_batch, run_sweep
+from optreserve.studies.sweep import SweepError, parse_vary, run_batch, run_sweep
 
 
 def small_case(folder, size=80.0, price=2.0):
@@ -59,7 +59,7 @@ def test_a_failing_point_is_recorded_and_the_rest_go_on(case_dir, monkeypatch):
     the error text; the other points are solved."""
     import sys
 
-    solve_mod = sys.modules["optreserve.solve"]
+    solve_mod = sys.modules["optreserve.solver.run"]
     real = solve_mod.solve
 
     def flaky(case, **kw):
@@ -154,7 +154,7 @@ def test_apply_point_overrides_per_period_values_in_a_horizon(case_dir):
     scales the per-period prices too (docs/case-format.md, Sweeps and batches)."""
     from conftest import csv_text
 
-    from optreserve.sweep import apply_point
+    from optreserve.studies.sweep import apply_point
 
     folder = write_case(case_dir(), settings(),
                         [unit("Ald_1", "Aldmere", 1000, 600, 2, 10, price_up=3),

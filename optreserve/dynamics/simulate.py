@@ -36,11 +36,11 @@ import scipy.sparse as sp
 from scipy.integrate import solve_ivp
 from scipy.optimize import minimize_scalar
 
-from .case import Case
-from .errors import CaseError, OptreserveError, Problem
-from .reader import Col, _Collector, _read_csv, _typed_table
-from .results import CAUTION, staged_output, write_table
-from .settle import settle_instances
+from optreserve.case.data import Case
+from optreserve.errors import CaseError, OptreserveError, Problem
+from optreserve.case.reader import Col, _Collector, _read_csv, _typed_table
+from optreserve.output.results import CAUTION, staged_output, write_table
+from optreserve.verify.settle import settle_instances
 
 # A first-order lag delivers 1 - exp(-4) = 98.2 % of a step at four time constants: the
 # activation time is read as the time to (nearly) full delivery.

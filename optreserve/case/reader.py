@@ -22,9 +22,9 @@ from typing import Any, Callable
 import numpy as np
 import pandas as pd
 
-from .case import Case, DroopSettings, Limits, SolverSettings
-from .errors import CaseError, Problem
-from .rules import fill_limits, rule_warnings
+from optreserve.case.data import Case, DroopSettings, Limits, SolverSettings
+from optreserve.errors import CaseError, Problem
+from optreserve.case.rules import fill_limits, rule_warnings
 
 MAX_PROBLEMS = 50
 

@@ -16,8 +16,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .errors import OptreserveError
+from optreserve import __version__
+from optreserve.errors import OptreserveError
 
 CAUTION = ("Planning study only, not an operating instruction: the applicable grid code, the "
            "system operator and licensed engineers decide actual governor settings and reserve.")

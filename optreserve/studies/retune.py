@@ -14,12 +14,12 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
-from .case import Case, DroopSettings
-from .errors import CaseError, OptreserveError, Problem
-from .model import TIE_BREAK_PER_MW_H, Horizon, ModelInfo, nadir_shortfall, prepare
-from .program import LinearProgram
-from .results import Result
-from .solve import evaluate_allocation, solve
+from optreserve.case.data import Case, DroopSettings
+from optreserve.errors import CaseError, OptreserveError, Problem
+from optreserve.model.rows import TIE_BREAK_PER_MW_H, Horizon, ModelInfo, nadir_shortfall, prepare
+from optreserve.model.program import LinearProgram
+from optreserve.output.results import Result
+from optreserve.solver.run import evaluate_allocation, solve
 
 # Continuous droop bands are searched on this grid (plus today's setting) in a retune.
 GRID_PCT = 0.1

@@ -13,9 +13,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .case import Case
-from .network import ptdf
-from .program import LinearProgram
+from optreserve.case.data import Case
+from optreserve.network.ptdf import ptdf
+from optreserve.model.program import LinearProgram
 
 # Penalty of the elastic (diagnosis) slacks: large against any headroom price so that a
 # relaxation is used only when nothing else can meet the limits.

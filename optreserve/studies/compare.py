@@ -17,9 +17,9 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .case import Case
-from .model import Horizon, nadir_shortfall, prepare
-from .results import CAUTION, Result
+from optreserve.case.data import Case
+from optreserve.model.rows import Horizon, nadir_shortfall, prepare
+from optreserve.output.results import CAUTION, Result
 
 # grid of the common droop when the case has no steps_pct
 GRID_STEP_PCT = 0.01
@@ -91,7 +91,7 @@ def compare_uniform(case: Case, result: Result | None = None, **solve_kw) -> Com
     """Cost and broken limits of the uniform-droop policy against the optimum (`result`, or a
     fresh solve with `solve_kw`)."""
     if result is None:
-        from .solve import solve
+        from optreserve.solver.run import solve
 
         result = solve(case, **solve_kw)
     hz = prepare(case)
@@ -191,7 +191,7 @@ def _evaluate(case: Case, hz: Horizon, droop_pct: np.ndarray, capable: np.ndarra
     r_up = np.where(hz.need_up[:, None], np.minimum(want, hz.R_up), 0.0)
     r_dn = np.where(hz.need_dn[:, None], np.minimum(want, hz.R_dn), 0.0)
     cost = hz.price_up * r_up + hz.price_dn * r_dn
-    from .solve import evaluate_allocation  # settle.py: scalar balance and DC flows
+    from optreserve.solver.run import evaluate_allocation  # settle.py: scalar balance and DC flows
 
     pts = evaluate_allocation(case, hz, gain, r_up, r_dn)
     labels = [str(p) for p in case.periods] if case.is_horizon else [""] * hz.T

@@ -11,8 +11,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import progress
-from .program import LinearProgram
+from optreserve import progress
+from optreserve.model.program import LinearProgram
 
 # Above this many nonzeros "auto" loads HiGHS in bulk: per-expression Pyomo machinery, not the
 # solver, dominates there (docs/performance.md).

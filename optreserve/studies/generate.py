@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .settle import dc_flows
+from optreserve.verify.settle import dc_flows
 
 # technology: share of units, capacity range MW, energy cost (merit order), headroom price,
 # droop band, dead band choices mHz, provides, inertia s, activation s

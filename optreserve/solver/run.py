@@ -9,14 +9,14 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from . import progress
-from .backends import Outcome, solve_highs, solve_program
-from .case import Case
-from .errors import InfeasibleError, SolverError, VerificationError
-from .model import Horizon, ModelInfo, build_model, effective_factor, prepare
-from .program import LinearProgram
-from .results import Result
-from .settle import BatchPoints, settle_instances
+from optreserve import progress
+from optreserve.solver.backends import Outcome, solve_highs, solve_program
+from optreserve.case.data import Case
+from optreserve.errors import InfeasibleError, SolverError, VerificationError
+from optreserve.model.rows import Horizon, ModelInfo, build_model, effective_factor, prepare
+from optreserve.model.program import LinearProgram
+from optreserve.output.results import Result
+from optreserve.verify.settle import BatchPoints, settle_instances
 
 # An independent recalculation may differ from the optimiser's own figures by this much
 # before it counts as an error.
@@ -159,7 +159,7 @@ def _nadir_round(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
     live = np.nonzero((hz.dP > 0) & (hz.H_sys > 0))[0]
     if N_max is None or len(live) == 0 or len(hz.dP) > NADIR_SIM_MAX_INSTANCES:
         return False
-    from .simulate import build_system, simulate_event
+    from optreserve.dynamics.simulate import build_system, simulate_event
 
     progress.step("simulating events against the nadir limit")
     gain, r_up, r_dn = period_values(lp, info, out.x)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .case import Case
+from optreserve.case.data import Case
 
 
 def incidence(case: Case) -> np.ndarray:

@@ -28,9 +28,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .errors import OptreserveError
-from .results import CAUTION
+from optreserve import __version__
+from optreserve.errors import OptreserveError
+from optreserve.output.results import CAUTION
 
 REPORT_NAME = "report.html"
 
@@ -349,7 +349,7 @@ def _attach_case(rf: ResultFolder, case_dir) -> None:
     where = Path(case_dir) if case_dir is not None else recorded
     if where is None:
         return
-    from .reader import load_case  # a CaseError here is an input error (exit 2)
+    from optreserve.case.reader import load_case  # a CaseError here is an input error (exit 2)
 
     case = load_case(where)
     if rf.allocation is not None:

@@ -11,7 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .case import Case
+from optreserve.case.data import Case
 
 
 # Round-off below which a response that just covers the event still settles (the solver's

@@ -29,9 +29,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .case import Case
-from .errors import InfeasibleError, OptreserveError
-from .results import CAUTION, staged_output, write_table
+from optreserve.case.data import Case
+from optreserve.errors import InfeasibleError, OptreserveError
+from optreserve.output.results import CAUTION, staged_output, write_table
 
 LIMIT_KEYS = ("max_settled_deviation_hz", "full_activation_deviation_hz",
               "max_nadir_deviation_hz", "max_rocof_hz_per_s")
@@ -208,7 +208,7 @@ def _failed(status: str, text: str) -> dict:
 
 def _attempt(make_case, engine: str) -> dict:
     """The row of one solve; never raises (the failure is in the row)."""
-    from .solve import solve
+    from optreserve.solver.run import solve
 
     try:
         return _row_of(solve(make_case(), engine=engine))
@@ -227,7 +227,7 @@ def run_point(case: Case, index: int, point: dict[str, float], engine: str = ENG
 
 def run_case_folder(path: str, index: int, engine: str = ENGINE) -> dict:
     """Read and solve one case folder of a batch (the worker reads it from the path)."""
-    from .reader import load_case
+    from optreserve.case.reader import load_case
 
     t0 = time.perf_counter()
     row = _attempt(lambda: load_case(path), engine)

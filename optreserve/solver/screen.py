@@ -6,8 +6,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .case import Case
-from .model import Events, unit_data
+from optreserve.case.data import Case
+from optreserve.model.rows import Events, unit_data
 
 
 def event_capability(case: Case) -> pd.DataFrame:
