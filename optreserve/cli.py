@@ -13,7 +13,8 @@ from optreserve import progress
 from optreserve.errors import CaseError, InfeasibleError, OptreserveError
 from optreserve.progress import TerminalStatus, use_colour
 from optreserve.case.reader import load_case
-from optreserve.output.results import CAUTION, Result, check_out, staged_output, write_table
+from optreserve.output.results import CAUTION, Result, write_table
+from optreserve.output.staging import check_out, staged_output
 from optreserve.solver.screen import event_capability
 
 EXIT_OK, EXIT_OTHER, EXIT_INPUT, EXIT_INFEASIBLE = 0, 1, 2, 3

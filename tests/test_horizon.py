@@ -16,7 +16,7 @@ from conftest import csv_text, settings, write_case
 
 import optreserve
 from optreserve.studies.generate import Spec, generate
-from optreserve.model.rows import build_model
+from optreserve.model.build import build_model
 
 
 def _three_period_case(folder, hold=None):

@@ -15,7 +15,7 @@ from conftest import settings, write_case
 import optreserve
 from optreserve.cli import main
 from optreserve.errors import InfeasibleError
-from optreserve.model.rows import prepare
+from optreserve.model.horizon import prepare
 from optreserve.studies.retune import retune, violations, with_provider_loss
 
 

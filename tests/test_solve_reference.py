@@ -14,7 +14,7 @@ from refcalc import event_response
 from scipy.optimize import Bounds, LinearConstraint, linprog, milp
 
 import optreserve
-from optreserve.model.rows import build_model
+from optreserve.model.build import build_model
 
 ENGINE = "highspy"  # bulk load: fast; the Pyomo emitter is compared once in test (b)
 

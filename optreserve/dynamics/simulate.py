@@ -39,7 +39,8 @@ from scipy.optimize import minimize_scalar
 from optreserve.case.data import Case
 from optreserve.errors import CaseError, OptreserveError, Problem
 from optreserve.case.reader import Col, _Collector, _read_csv, _typed_table
-from optreserve.output.results import CAUTION, staged_output, write_table
+from optreserve.output.results import CAUTION, write_table
+from optreserve.output.staging import staged_output
 from optreserve.verify.settle import settle_instances
 
 # A first-order lag delivers 1 - exp(-4) = 98.2 % of a step at four time constants: the

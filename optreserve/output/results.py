@@ -1,34 +1,27 @@
-"""The result of a solve as pandas tables, and writing them (atomically) to an output folder."""
+"""optreserve.output.results"""
 
 from __future__ import annotations
-
 import csv
 import json
 import re
-import os
-import shutil
-import tempfile
-from contextlib import contextmanager
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-
 import numpy as np
 import pandas as pd
-
 from optreserve import __version__
-from optreserve.errors import OptreserveError
+from optreserve.output.staging import staged_output
+
 
 CAUTION = ("Planning study only, not an operating instruction: the applicable grid code, the "
            "system operator and licensed engineers decide actual governor settings and reserve.")
 
+
 # A settled point counts as binding within this distance of its limit.
 BINDING_HZ = 1e-5
+
+
 BINDING_MW = 1e-2
-
-
-class OutputExistsError(OptreserveError):
-    exit_code = 2
 
 
 @dataclass
@@ -295,42 +288,3 @@ def write_table(df: pd.DataFrame, path: Path) -> None:
             w.writerow(header)
             for row in grid.tolist():
                 w.writerow([x if isinstance(x, str) else f"{x:.6f}" for x in row])
-
-
-def check_out(out: Path, force: bool) -> None:
-    """Refuse a non-empty output folder without force (before any work is done)."""
-    out = Path(out)
-    if out.exists() and not out.is_dir():
-        raise OutputExistsError(f"{out}: exists and is not a folder")
-    if out.is_dir() and any(out.iterdir()) and not force:
-        raise OutputExistsError(f"{out}: folder is not empty; choose another --out or add "
-                                "--force to replace optreserve's files in it")
-
-
-@contextmanager
-def staged_output(out: Path, force: bool = False):
-    """Yield a temporary folder beside `out`; when the block ends normally its files move into
-    `out` all at once (a new folder is renamed into place). An exception or Ctrl-C leaves `out`
-    as it was. With force, only the files written here replace their namesakes in a non-empty
-    folder; nothing else there is touched."""
-    out = Path(out)
-    check_out(out, force)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
-    try:
-        yield tmp
-        _move_into(tmp, out)
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
-
-
-def _move_into(tmp: Path, out: Path) -> None:
-    if not out.exists():
-        os.replace(tmp, out)
-        return
-    if not any(out.iterdir()):
-        out.rmdir()
-        os.replace(tmp, out)
-        return
-    for f in sorted(tmp.iterdir()):
-        os.replace(f, out / f.name)

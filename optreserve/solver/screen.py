@@ -7,7 +7,7 @@ import numpy as np
 import pandas as pd
 
 from optreserve.case.data import Case
-from optreserve.model.rows import Events, unit_data
+from optreserve.model.horizon import Events, unit_data
 
 
 def event_capability(case: Case) -> pd.DataFrame:

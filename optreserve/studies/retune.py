@@ -16,10 +16,13 @@ import pandas as pd
 
 from optreserve.case.data import Case, DroopSettings
 from optreserve.errors import CaseError, OptreserveError, Problem
-from optreserve.model.rows import TIE_BREAK_PER_MW_H, Horizon, ModelInfo, nadir_shortfall, prepare
+from optreserve.model.build import TIE_BREAK_PER_MW_H, ModelInfo
+from optreserve.model.horizon import Horizon, prepare
+from optreserve.model.nadir import nadir_shortfall
 from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
-from optreserve.solver.run import evaluate_allocation, solve
+from optreserve.solver.readback import evaluate_allocation
+from optreserve.solver.run import solve
 
 # Continuous droop bands are searched on this grid (plus today's setting) in a retune.
 GRID_PCT = 0.1

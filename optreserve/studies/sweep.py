@@ -31,7 +31,8 @@ import pandas as pd
 
 from optreserve.case.data import Case
 from optreserve.errors import InfeasibleError, OptreserveError
-from optreserve.output.results import CAUTION, staged_output, write_table
+from optreserve.output.results import CAUTION, write_table
+from optreserve.output.staging import staged_output
 
 LIMIT_KEYS = ("max_settled_deviation_hz", "full_activation_deviation_hz",
               "max_nadir_deviation_hz", "max_rocof_hz_per_s")
