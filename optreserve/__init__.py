@@ -12,6 +12,7 @@ Results are planning studies, not operating instructions.
 __version__ = "0.1.0"
 
 from optreserve.case.data import Case  # noqa: E402
+from optreserve.case.reader import load_case  # noqa: E402
 from optreserve.errors import (  # noqa: E402
     CaseError,
     InfeasibleError,
@@ -19,10 +20,9 @@ from optreserve.errors import (  # noqa: E402
     SolverError,
     VerificationError,
 )
-from optreserve.case.reader import load_case  # noqa: E402
 from optreserve.output.results import Result  # noqa: E402
-from optreserve.solver.screen import event_capability  # noqa: E402
 from optreserve.solver.run import solve  # noqa: E402
+from optreserve.solver.screen import event_capability  # noqa: E402
 
 __all__ = [
     "Case",

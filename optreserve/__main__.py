@@ -1,3 +1,3 @@
-from optreserve.cli import main
+from optreserve.cli.app import main
 
 raise SystemExit(main())

@@ -15,8 +15,8 @@ import pytest
 from conftest import csv_text, settings, write_case
 
 import optreserve
-from optreserve.studies.generate import Spec, generate
 from optreserve.model.build import build_model
+from optreserve.studies.generate import Spec, generate
 
 
 def _three_period_case(folder, hold=None):

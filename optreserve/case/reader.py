@@ -13,9 +13,9 @@ import math
 import re
 import time
 import tomllib
-from datetime import datetime
 from collections import deque
 from dataclasses import dataclass
+from datetime import datetime
 from pathlib import Path
 from typing import Any, Callable
 
@@ -23,8 +23,8 @@ import numpy as np
 import pandas as pd
 
 from optreserve.case.data import Case, DroopSettings, Limits, SolverSettings
-from optreserve.errors import CaseError, Problem
 from optreserve.case.rules import fill_limits, rule_warnings
+from optreserve.errors import CaseError, Problem
 
 MAX_PROBLEMS = 50
 

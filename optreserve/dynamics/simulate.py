@@ -37,8 +37,8 @@ from scipy.integrate import solve_ivp
 from scipy.optimize import minimize_scalar
 
 from optreserve.case.data import Case
-from optreserve.errors import CaseError, OptreserveError, Problem
 from optreserve.case.reader import Col, _Collector, _read_csv, _typed_table
+from optreserve.errors import CaseError, OptreserveError, Problem
 from optreserve.output.results import CAUTION, write_table
 from optreserve.output.staging import staged_output
 from optreserve.verify.settle import settle_instances

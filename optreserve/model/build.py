@@ -1,15 +1,23 @@
-"""optreserve.model.build"""
+"""The optimisation model in gain space, one small function per constraint family.
+
+Symbols follow docs/formulation.md: K unit gain [MW/Hz] (one per droop block b), u
+participation, z droop-step choice, r_up/r_dn headroom [MW] (per period t), G per-area
+per-dead-band-class gain aggregate [MW/Hz], F settled limit, F_act full-activation deviation,
+D_a load self-regulation [MW/Hz], Phi the PTDF. A single snapshot is a horizon of one period.
+Every family is added as whole arrays; no Python loop runs over units or periods.
+"""
 
 from __future__ import annotations
-from dataclasses import dataclass
-import numpy as np
-from optreserve.case.data import Case
-from optreserve.model.program import LinearProgram
-from optreserve.model.flows import _rows_dispatch, _rows_flows, _rows_flows_dispatch
-from optreserve.model.horizon import (ELASTIC_PENALTY, Events, Horizon, _removed,
-                                       prepare)
-from optreserve.model.nadir import _rows_nadir
 
+from dataclasses import dataclass
+
+import numpy as np
+
+from optreserve.case.data import Case
+from optreserve.model.flows import _rows_dispatch, _rows_flows, _rows_flows_dispatch
+from optreserve.model.horizon import ELASTIC_PENALTY, Events, Horizon, _removed, prepare
+from optreserve.model.nadir import _rows_nadir
+from optreserve.model.program import LinearProgram
 
 TIE_BREAK_PER_MW_H = 1.0e-6
 

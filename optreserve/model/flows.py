@@ -2,7 +2,9 @@
 for fixed outputs and for energy co-optimisation."""
 
 from __future__ import annotations
+
 import numpy as np
+
 from optreserve.model.horizon import ELASTIC_PENALTY, Horizon, _removed, effective_factor
 
 

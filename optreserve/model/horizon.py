@@ -3,8 +3,11 @@
 period."""
 
 from __future__ import annotations
+
 from dataclasses import dataclass
+
 import numpy as np
+
 from optreserve.case.data import Case
 from optreserve.network.ptdf import ptdf
 

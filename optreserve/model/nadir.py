@@ -2,10 +2,11 @@
 against the energy the inertia cannot cover (docs/formulation.md, nadir)."""
 
 from __future__ import annotations
+
 import numpy as np
+
 from optreserve.case.data import Case
 from optreserve.model.horizon import ELASTIC_PENALTY, Horizon
-
 
 # Nadir rows: time points per event (fewer for long horizons to keep the model small) and
 # the governor model shared with the simulator: a first-order lag of time constant

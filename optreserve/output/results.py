@@ -1,17 +1,19 @@
-"""optreserve.output.results"""
+"""The result of a solve as pandas tables, and writing them (atomically) to an output folder."""
 
 from __future__ import annotations
+
 import csv
 import json
 import re
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+
 import numpy as np
 import pandas as pd
+
 from optreserve import __version__
 from optreserve.output.staging import staged_output
-
 
 CAUTION = ("Planning study only, not an operating instruction: the applicable grid code, the "
            "system operator and licensed engineers decide actual governor settings and reserve.")

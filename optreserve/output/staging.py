@@ -1,11 +1,13 @@
 """Atomic output folders: checks on --out, a staging folder, and the move into place."""
 
 from __future__ import annotations
+
 import os
 import shutil
 import tempfile
 from contextlib import contextmanager
 from pathlib import Path
+
 from optreserve.errors import OptreserveError
 
 

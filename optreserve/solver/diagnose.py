@@ -2,13 +2,15 @@
 one line per shortfall (what, where, by how much)."""
 
 from __future__ import annotations
+
 import numpy as np
 import pandas as pd
-from optreserve.solver.backends import solve_program
+
 from optreserve.case.data import Case
 from optreserve.errors import InfeasibleError
-from optreserve.model.horizon import Horizon
 from optreserve.model.build import build_model
+from optreserve.model.horizon import Horizon
+from optreserve.solver.backends import solve_program
 from optreserve.solver.readback import exact_points
 
 

@@ -2,12 +2,14 @@
 flow rows with the integer decisions fixed), energy prices, and area prices of reserve."""
 
 from __future__ import annotations
+
 import numpy as np
 import pandas as pd
-from optreserve.solver.backends import Outcome, solve_highs
+
 from optreserve.model.build import ModelInfo
 from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
+from optreserve.solver.backends import Outcome, solve_highs
 from optreserve.solver.readback import model_beta, period_values
 
 

@@ -2,17 +2,17 @@
 points and flows, and the independent exact evaluation they are checked against."""
 
 from __future__ import annotations
+
 import numpy as np
-from optreserve.solver.backends import Outcome
+
 from optreserve.case.data import Case
 from optreserve.errors import VerificationError
-from optreserve.model.horizon import Horizon
 from optreserve.model.build import ModelInfo
-from optreserve.model.horizon import effective_factor
+from optreserve.model.horizon import Horizon, effective_factor
 from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
+from optreserve.solver.backends import Outcome
 from optreserve.verify.settle import BatchPoints, settle_instances
-
 
 # An independent recalculation may differ from the optimiser's own figures by this much
 # before it counts as an error.

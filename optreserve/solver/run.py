@@ -1,21 +1,24 @@
-"""optreserve.solver.run"""
+"""Solve a case: build the model, run HiGHS, settle dead-band fixed points, verify
+independently, read prices, and return a Result of pandas tables."""
 
 from __future__ import annotations
+
 import time
 from typing import Callable
+
 import numpy as np
+
 from optreserve import progress
-from optreserve.solver.backends import Outcome, solve_program
 from optreserve.case.data import Case
 from optreserve.errors import SolverError
-from optreserve.model.horizon import Horizon, prepare
 from optreserve.model.build import ModelInfo, build_model
+from optreserve.model.horizon import Horizon, prepare
 from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
+from optreserve.solver.backends import Outcome, solve_program
 from optreserve.solver.diagnose import diagnose
 from optreserve.solver.prices import _attach_prices
 from optreserve.solver.readback import _make_result, dispatch_view, exact_points, period_values
-
 
 # Dead-band fixed point: stop when every settled guess moves less than this.
 FIXED_POINT_TOL_HZ = 1e-7

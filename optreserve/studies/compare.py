@@ -192,7 +192,9 @@ def _evaluate(case: Case, hz: Horizon, droop_pct: np.ndarray, capable: np.ndarra
     r_up = np.where(hz.need_up[:, None], np.minimum(want, hz.R_up), 0.0)
     r_dn = np.where(hz.need_dn[:, None], np.minimum(want, hz.R_dn), 0.0)
     cost = hz.price_up * r_up + hz.price_dn * r_dn
-    from optreserve.solver.readback import evaluate_allocation  # settle.py: scalar balance and DC flows
+    from optreserve.solver.readback import (
+        evaluate_allocation,  # settle.py: scalar balance and DC flows
+    )
 
     pts = evaluate_allocation(case, hz, gain, r_up, r_dn)
     labels = [str(p) for p in case.periods] if case.is_horizon else [""] * hz.T

@@ -13,7 +13,6 @@ import numpy as np
 
 from optreserve.case.data import Case
 
-
 # Round-off below which a response that just covers the event still settles (the solver's
 # feasibility tolerance leaves headroom short by up to ~1e-7 MW of the droop's need).
 SATURATION_TOL = 1e-9
