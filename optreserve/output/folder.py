@@ -1,36 +1,48 @@
 """The one reader of result folders: the files `solve`, `retune` and `simulate` write, read
-back typed against their schemas (declared once, here).
+back typed against their schemas (output/schemas.py).
 
-Used by the report (read_result in report_data.py reads a whole folder through it) and by
-`simulate --allocation` (read_allocation: the allocation of a result folder, checked against
-the case). Any problem is a ResultFileError (an input error, exit code 2) naming file, row and
-column; readers stop at the first problem, so the message is one line.
-
-Column kinds: "text"; "bool" (true/false, yes/no, 1/0; blank allowed only where a reader is
-lenient); "num" (a finite number, not blank); "num?" (blank allowed, read as NaN); "num?inf"
-(blank and ±inf allowed). `complete=True` (the report: the folder as the tool wrote it) needs
-every column the tool always writes; `complete=False` (a hand-made allocation for simulate)
-needs only the core columns and fills the others with defaults.
+Used by the report (read_result: a whole folder, checked for consistency, with the case folder
+when given or recorded) and by `simulate --allocation` (read_allocation: the allocation of a
+result folder, checked against the case). Any problem is a ResultFileError (an input error,
+exit code 2) naming file, row and column; readers stop at the first problem, so the message is
+one line. `complete=True` (the report: the folder as the tool wrote it) needs every column the
+tool always writes; `complete=False` (a hand-made allocation for simulate) needs only the core
+columns, fills the others with defaults and reads a blank true/false cell as "not said".
 """
 
 from __future__ import annotations
 
 import csv
+import functools
 import json
-import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 
 from optreserve.errors import CaseError, Problem
+from optreserve.output.allocation_check import allocation_problems, check_allocation
+from optreserve.output.schemas import (
+    ALLOCATION,
+    DIAGNOSIS,
+    EVENTS,
+    LINKS,
+    PROPOSAL,
+    RETUNE_NUMBERS,
+    SCHEDULE_WIDE,
+    SUMMARY_NUMBERS,
+    Column,
+)
 
 if TYPE_CHECKING:
     from optreserve.case.data import Case
 
-MAX_PROBLEMS = 50  # cross-checks against a case collect at most this many
+__all__ = ["ResultFileError", "ResultFolder", "allocation_problems", "check_allocation",
+           "read_allocation", "read_json", "read_png", "read_result", "read_retune",
+           "read_summary", "read_table"]
+
 _TRUE = {"true", "1", "yes", "y", "t"}
 _FALSE = {"false", "0", "no", "n", "f"}
 
@@ -39,8 +51,8 @@ class ResultFileError(CaseError):
     """A result file is missing or cannot be read (exit code 2; nothing is written)."""
 
     def __init__(self, file, message: str, row: int | None = None,
-                 column: str | None = None):
-        super().__init__([Problem(str(file), message, row, column)])
+                 column: str | None = None, problem: Problem | None = None):
+        super().__init__([problem or Problem(str(file), message, row, column)])
 
 
 class _At(Problem):
@@ -48,77 +60,6 @@ class _At(Problem):
 
     def __str__(self) -> str:
         return f"{self.file} line {self.row} column {self.column}: {self.message}"
-
-
-@dataclass(frozen=True)
-class Column:
-    name: str
-    kind: str  # "text", "bool", "num", "num?", "num?inf"
-    always: bool = True  # the tool always writes it (needed when reading complete)
-    core: bool = False  # needed even when reading leniently
-    default: Any = ""  # filled in for an absent column when reading leniently
-    at_least: float | None = None  # lower bound, with `above` deciding > or >=
-    above: bool = False
-
-
-def _cols(*cols: Column) -> dict[str, Column]:
-    return {c.name: c for c in cols}
-
-
-ALLOCATION = _cols(
-    Column("unit", "text", core=True), Column("area", "text", core=True),
-    Column("period", "text", always=False),  # horizons only
-    Column("provides", "bool", default=None),
-    Column("droop_pct", "num?", default=math.nan, at_least=0.0, above=True),
-    Column("gain_mw_per_hz", "num", core=True, at_least=0.0),
-    Column("headroom_up_mw", "num", core=True, at_least=0.0),
-    Column("headroom_down_mw", "num", core=True, at_least=0.0),
-    Column("cost_per_h", "num", default=math.nan))
-EVENTS = _cols(
-    Column("event", "text"), Column("kind", "text"), Column("area", "text"),
-    Column("period", "text", always=False),
-    Column("size_mw", "num"), Column("settled_frequency_hz", "num"),
-    Column("settled_deviation_hz", "num"), Column("limit_hz", "num"), Column("binding", "bool"),
-    # blank where the fixed-integer dual says nothing (droop steps)
-    Column("marginal_cost_per_mw_h", "num?"),
-    # the re-solve price, when the run computed it
-    Column("incremental_cost_per_mw_h", "num?", always=False))
-LINKS = _cols(
-    Column("link", "text"), Column("event", "text"), Column("period", "text", always=False),
-    Column("flow_before_mw", "num"), Column("flow_after_mw", "num"), Column("limit_mw", "num"),
-    Column("loading_pct", "num"))
-DIAGNOSIS = _cols(
-    Column("family", "text"), Column("element", "text"), Column("event", "text"),
-    Column("period", "text", always=False),
-    Column("short_mw", "num?"), Column("excess_hz", "num?inf"), Column("over_mw", "num?"))
-PROPOSAL = _cols(
-    Column("unit", "text"), Column("area", "text"),
-    Column("droop_now_pct", "num?"), Column("droop_proposed_pct", "num?"),
-    Column("change", "text"), Column("droop_change_pct", "num"),
-    Column("headroom_up_now_mw", "num"), Column("headroom_up_proposed_mw", "num"),
-    Column("headroom_down_now_mw", "num"), Column("headroom_down_proposed_mw", "num"),
-    Column("reason", "text"))
-BEFORE_AFTER = _cols(
-    Column("event", "text"), Column("period", "text", always=False),
-    Column("settled_frequency_before_hz", "num?"), Column("settled_frequency_after_hz", "num"),
-    Column("margin_before_hz", "num?"), Column("margin_after_hz", "num"),
-    Column("worst_link_before", "text", always=False),
-    Column("loading_before_pct", "num?", always=False),
-    Column("worst_link_after", "text", always=False),
-    Column("loading_after_pct", "num?", always=False))
-# schedule_wide.csv: unit, direction, then one numeric column per period
-SCHEDULE_WIDE = _cols(Column("unit", "text"), Column("direction", "text"))
-SCHEMAS = {"allocation.csv": ALLOCATION, "events.csv": EVENTS, "links.csv": LINKS,
-           "diagnosis.csv": DIAGNOSIS, "proposal.csv": PROPOSAL,
-           "before_after.csv": BEFORE_AFTER, "schedule_wide.csv": SCHEDULE_WIDE}
-# Files of other studies (prices.csv, simulation_summary.csv) have open column sets: they are
-# typed by content (read_table with schema None).
-
-SUMMARY_NUMBERS = ("objective_per_h", "objective_total", "objective_with_penalty",
-                   "change_penalty", "mip_gap", "headroom_up_mw", "headroom_down_mw",
-                   "horizon_hours", "periods", "units_providing", "dead_band_iterations")
-RETUNE_NUMBERS = ("units_changed", "total_droop_change_pct", "cost_before_per_h",
-                  "cost_after_per_h")
 
 
 def first_line(exc: Exception) -> str:
@@ -271,8 +212,8 @@ def read_json(path: Path, numbers: tuple = (), status: bool = False) -> dict:
     try:
         data = json.loads(text)
     except json.JSONDecodeError as exc:
-        raise CaseError([_At(str(path), f"not valid JSON: {exc.msg}", exc.lineno,
-                             str(exc.colno))]) from None
+        raise ResultFileError(path, "", problem=_At(str(path), f"not valid JSON: {exc.msg}",
+                                                    exc.lineno, str(exc.colno))) from None
     if not isinstance(data, dict):
         raise ResultFileError(path, "not a JSON object")
     if status and not isinstance(data.get("status"), str):
@@ -337,85 +278,188 @@ def read_allocation(path: str | Path, case: Case) -> pd.DataFrame:
     return df
 
 
-def check_allocation(case: Case, df: pd.DataFrame, file: str) -> None:
-    """Raise CaseError with every problem (up to MAX_PROBLEMS) of allocation_problems."""
-    problems = allocation_problems(case, df, file)
-    if problems:
-        raise CaseError(problems[:MAX_PROBLEMS])
 
 
-def allocation_problems(case: Case, df: pd.DataFrame, file: str) -> list[Problem]:
-    """Cross-check an allocation table (read or in memory) against the case: known units in
-    their areas, the case's periods, one row per unit and period, gains that match the droop
-    on the unit's capacity."""
-    probs: list[Problem] = []
+# ------------------------------------------------------------------ a whole result folder
+_CASE_KEYS = ("case_dir", "case_path", "case_folder")
+SIMULATION_SUMMARY = "simulation_summary.csv"
+SIMULATION_DIR = "simulation"  # a sub-folder `simulate --out RESULT_DIR/simulation` wrote
 
-    def err(message, row=None, column=None):
-        probs.append(Problem(file, message, row, column))
 
-    lines = (df["_line"].to_numpy() if "_line" in df.columns
-             else np.arange(len(df), dtype=np.int64) + 2)
-    for c in ("unit", "area", "gain_mw_per_hz", "headroom_up_mw", "headroom_down_mw"):
-        if c not in df.columns:
-            err("required column is missing", 1, c)
-    if probs:
-        return probs
-    u = case.units
-    upos = {x: k for k, x in enumerate(u["unit"])}
-    units = df["unit"].astype(str).to_numpy(object)
-    i = np.array([upos.get(x, -1) for x in units])
-    for r in np.nonzero(i < 0)[0][:50]:
-        err(f"unknown unit '{units[r][:40]}' (not in units.csv of the case)", int(lines[r]),
-            "unit")
-    ok = i >= 0
-    areas = df["area"].astype(str).to_numpy(object)
-    case_area = u["area"].to_numpy(object)
-    for r in np.nonzero(ok)[0][areas[ok] != case_area[i[ok]]][:50]:
-        err(f"unit '{units[r]}' is in area '{case_area[i[r]]}' in the case, not "
-            f"'{areas[r][:40]}'", int(lines[r]), "area")
-    per = (df["period"].fillna("").astype(str).to_numpy(object) if "period" in df.columns
-           else np.full(len(df), "", dtype=object))
-    labels = [str(p) for p in case.periods]
-    if case.is_horizon and (per == "").all():
-        err("the case has periods: a period column with the case's period labels is required",
-            1, "period")
-        return probs
-    if case.is_horizon:
-        known = set(labels)
-        for r in np.nonzero(~pd.Series(per).isin(known).to_numpy())[0][:50]:
-            err(f"period '{per[r][:40]}' is not a period of the case", int(lines[r]), "period")
+def _uniq(values) -> list:
+    """Distinct values in order of first appearance."""
+    return list(pd.unique(pd.Series(values, dtype=object)))
+
+
+@dataclass
+class ResultFolder:
+    """Everything a result folder holds, read and checked."""
+
+    folder: Path
+    summary: dict | None = None
+    allocation: pd.DataFrame | None = None
+    events: pd.DataFrame | None = None
+    links: pd.DataFrame | None = None
+    schedule: pd.DataFrame | None = None
+    diagnosis: pd.DataFrame | None = None
+    simulation: pd.DataFrame | None = None
+    simulation_file: str | None = None  # where simulation came from, relative to folder
+    prices: pd.DataFrame | None = None  # prices.csv, per area (and period), when written
+    proposal: pd.DataFrame | None = None  # proposal.csv of a retune folder
+    retune: dict | None = None  # retune.json of a retune folder
+    sim_images: list = field(default_factory=list)  # (file name, png bytes)
+    case: object = None
+    case_dir: Path | None = None
+    notes: list = field(default_factory=list)  # said on the page, near the top
+
+    @property
+    def solved(self) -> bool:
+        return self.allocation is not None
+
+    @property
+    def horizon(self) -> bool:
+        return self.allocation is not None and "period" in self.allocation.columns
+
+    @functools.cached_property
+    def periods(self) -> list:  # read after allocation is set
+        if not self.horizon:
+            return []
+        return _uniq(self.allocation["period"])
+
+    @property
+    def nominal_hz(self) -> float:
+        if self.case is not None:
+            return float(self.case.nominal_frequency_hz)
+        ev = self.events
+        if ev is not None and len(ev):  # settled_frequency = nominal + deviation
+            return float(np.median(ev["settled_frequency_hz"] - ev["settled_deviation_hz"]))
+        return 50.0
+
+
+def read_result(result_dir, case_dir=None) -> ResultFolder:
+    """Read and check a result folder (and the case folder when given or recorded)."""
+    folder = Path(result_dir)
+    if not folder.is_dir():
+        raise ResultFileError(folder, "no such result folder")
+    rf = ResultFolder(folder=folder)
+    has = {p.name for p in folder.iterdir() if p.is_file()}
+    diag_newer = False
+    if "diagnosis.csv" in has:
+        diag_newer = ("summary.json" not in has or (folder / "diagnosis.csv").stat().st_mtime
+                      > (folder / "summary.json").stat().st_mtime)
+    if "allocation.csv" not in has and "diagnosis.csv" not in has:
+        raise ResultFileError(folder / "allocation.csv", "missing (and no diagnosis.csv): not "
+                              "a result folder of optreserve solve --out")
+    if diag_newer:  # the latest solve was infeasible: only diagnosis.csv is current
+        rf.diagnosis = read_table(folder / "diagnosis.csv", DIAGNOSIS)
+        if "allocation.csv" in has:
+            rf.notes.append("The latest solve into this folder found no feasible allocation "
+                            "(diagnosis.csv is newer than the other result files); the older "
+                            "allocation, event and link files are from an earlier run and are "
+                            "not shown.")
     else:
-        for r in np.nonzero(per != "")[0][:1]:
-            err("the case is a single snapshot: the allocation must not have periods",
-                int(lines[r]), "period")
-    key = pd.Series(units + "\x00" + per)
-    dup = key.duplicated().to_numpy() & ok
-    for r in np.nonzero(dup)[0][:50]:
-        err(f"unit '{units[r]}' appears twice" + (f" for period '{per[r]}'" if per[r] else ""),
-            int(lines[r]), "unit")
-    gain = df["gain_mw_per_hz"].to_numpy(float)
-    if "provides" in df.columns:
-        prov = df["provides"].to_numpy(object)
-        said_no = prov == False  # elementwise on an object array: a blank (None) is not "no"
-        for r in np.nonzero(said_no & (gain > 0))[0][:50]:
-            err(f"provides is false but gain_mw_per_hz is {gain[r]:g}", int(lines[r]),
-                "provides")
-    if "droop_pct" in df.columns:
-        droop = df["droop_pct"].to_numpy(float)
-        cap = u["capacity_mw"].to_numpy(float)[np.maximum(i, 0)]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            expect = cap / (droop / 100.0 * case.nominal_frequency_hz)
-        bad = ok & (gain > 0) & np.isfinite(droop) & (
-            np.abs(expect - gain) > 1e-4 * np.maximum(gain, 1.0))
-        for r in np.nonzero(bad)[0][:50]:
-            err(f"droop_pct {droop[r]:g} on capacity {cap[r]:g} MW gives {expect[r]:.6g} "
-                f"MW/Hz, not gain_mw_per_hz {gain[r]:.6g}: allocation of another case?",
-                int(lines[r]), "droop_pct")
-    if probs:
-        return probs
-    need = [(x, p) for p in (labels or [""]) for x in u["unit"]]
-    have = set(zip(units, per))
-    missing = [(x, p) for x, p in need if (x, p) not in have]
-    for x, p in missing[:50]:
-        err(f"no row for unit '{x}'" + (f" in period '{p}'" if p else ""), None, "unit")
-    return probs
+        rf.summary = read_summary(folder / "summary.json")
+        rf.allocation = read_table(folder / "allocation.csv", ALLOCATION)
+        rf.events = read_table(folder / "events.csv", EVENTS)
+        rf.links = read_table(folder / "links.csv", LINKS)
+        if "diagnosis.csv" in has:
+            rf.notes.append("diagnosis.csv is older than summary.json (from an earlier, "
+                            "infeasible run) and is not shown.")
+        _check_consistent(rf)
+        if rf.horizon and "schedule_wide.csv" in has:
+            rf.schedule = read_table(folder / "schedule_wide.csv", SCHEDULE_WIDE,
+                                     extra_kind="num")
+            missing = [p for p in rf.periods if p not in rf.schedule.columns]
+            if missing:
+                raise ResultFileError(folder / "schedule_wide.csv", "missing (a period of "
+                                      "allocation.csv)", None, missing[0])
+        if "proposal.csv" in has:  # a retune folder
+            rf.proposal = read_table(folder / "proposal.csv", PROPOSAL)
+            if "retune.json" in has:
+                rf.retune = read_retune(folder / "retune.json")
+    if rf.solved and "prices.csv" in has:
+        rf.prices = read_table(folder / "prices.csv", None)
+    _read_simulation(rf, has)
+    _attach_case(rf, case_dir)
+    return rf
+
+
+def _check_consistent(rf: ResultFolder) -> None:
+    f = rf.folder
+    per = {n: "period" in getattr(rf, n).columns for n in ("allocation", "events")}
+    if per["allocation"] != per["events"]:
+        raise ResultFileError(f / "events.csv", ("missing" if per["allocation"] else
+                                                 "unexpected") + " (allocation.csv "
+                              + ("has" if per["allocation"] else "has no") + " period column)",
+                              None, "period")
+    periods = rf.summary.get("periods")
+    if isinstance(periods, (int, float)) and periods > 1 and not rf.horizon:
+        raise ResultFileError(f / "allocation.csv", f"missing, but summary.json says "
+                              f"{int(periods)} periods", None, "period")
+    unknown = set(rf.links["event"]) - set(rf.events["event"])
+    if unknown:
+        raise ResultFileError(f / "links.csv", f"unknown event {min(unknown)!r} (not in "
+                              "events.csv)", None, "event")
+
+
+def _read_simulation(rf: ResultFolder, has: set) -> None:
+    """simulation_summary.csv (the folder's own, else one in simulation/) and the PNG plots of
+    the folder and of simulation/."""
+    f = rf.folder
+    sub = f / SIMULATION_DIR
+    ref = f / "summary.json" if "summary.json" in has else None
+    where = (SIMULATION_SUMMARY if SIMULATION_SUMMARY in has else
+             f"{SIMULATION_DIR}/{SIMULATION_SUMMARY}"
+             if (sub / SIMULATION_SUMMARY).is_file() else None)
+    if where is not None:
+        rf.simulation = read_table(f / where, None)
+        rf.simulation_file = where
+        if ref is not None and (f / where).stat().st_mtime < ref.stat().st_mtime:
+            rf.notes.append(f"{where} is older than summary.json: the simulation may belong "
+                            "to an earlier allocation.")
+    pngs = sorted(n for n in has if n.lower().endswith(".png"))
+    if sub.is_dir():
+        pngs += sorted(f"{SIMULATION_DIR}/{p.name}" for p in sub.iterdir()
+                       if p.is_file() and p.name.lower().endswith(".png"))
+    order = list(rf.events["event"].drop_duplicates()) if rf.events is not None else []
+
+    def key(name):  # in event order where the file name names an event
+        hits = [k for k, e in enumerate(order) if str(e) in name]
+        return (hits[0] if hits else len(order), name)
+
+    for name in sorted(pngs, key=key):
+        rf.sim_images.append((name, read_png(f / name)))
+
+
+def _attach_case(rf: ResultFolder, case_dir) -> None:
+    recorded = None
+    if case_dir is None and rf.summary is not None:
+        for k in _CASE_KEYS:
+            if isinstance(rf.summary.get(k), str):
+                recorded = Path(rf.summary[k])
+                if not recorded.is_absolute() and not recorded.is_dir():
+                    recorded = rf.folder / recorded
+                break
+        if recorded is not None and not recorded.is_dir():
+            rf.notes.append(f"summary.json names the case folder {recorded}, which is not "
+                            "there; the report is drawn from the result files alone.")
+            recorded = None
+    where = Path(case_dir) if case_dir is not None else recorded
+    if where is None:
+        return
+    from optreserve.case.reader import load_case  # a CaseError here is an input error (exit 2)
+
+    case = load_case(where)
+    if rf.allocation is not None:
+        ours = set(rf.allocation["unit"])
+        theirs = set(case.units["unit"])
+        if ours != theirs:
+            odd = sorted(ours - theirs) or sorted(theirs - ours)
+            raise ResultFileError(rf.folder / "allocation.csv", f"does not match the case "
+                                  f"folder {where} ({odd[0]!r} is in only one of them)", None,
+                                  "unit")
+        if rf.horizon and [str(p) for p in case.periods] != [str(p) for p in rf.periods]:
+            raise ResultFileError(rf.folder / "allocation.csv", f"the periods do not match "
+                                  f"the case folder {where}", None, "period")
+    rf.case = case
+    rf.case_dir = where
