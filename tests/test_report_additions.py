@@ -94,7 +94,7 @@ def test_transient_tie_loading_of_a_simulation_subfolder(solved, tmp_path):  # n
         "trip_quill_wind,49.70,124.0,harrow-quill,true,false\n"
         "harrow_load_drop,50.10,71.0,harrow-quill,true,true\n")
     page = build_report(res_dir).read_text(encoding="utf-8")
-    ties = re.search(r'<table id="transient-ties-table".*?</table>', page, re.S).group(0)
+    ties = re.search(r'<table id="transient-ties-table".*?</table>', page, re.DOTALL).group(0)
     assert re.search(r'<tr class="hot"><td>trip_quill_wind', ties)
     assert not re.search(r'<tr class="hot"><td>harrow_load_drop', ties)
     cells = {r[0]: r for r in table_cells(page, "transient-ties-table")}
@@ -113,7 +113,7 @@ def test_ids_with_dollar_signs_are_drawn_literally(tmp_path):
     res = optreserve.solve(optreserve.load_case(case_dir), engine="highspy")
     res_dir = res.write(tmp_path / "out")
     page = build_report(res_dir, case_dir).read_text(encoding="utf-8")
-    svg = re.search(r'<svg[^>]*data-plot="events".*?</svg>', page, re.S).group(0)
+    svg = re.search(r'<svg[^>]*data-plot="events".*?</svg>', page, re.DOTALL).group(0)
     # drawn as a text element (svg.fonttype none), not only named in the SVG's comments
     assert re.search(r">trip_\$wind\$</text>", svg)
 
