@@ -98,7 +98,7 @@ def header(rf: ResultFolder) -> dict:
         top = float(sim["max_link_loading_pct"].iloc[k])
         sub = ([(str(sim["max_loading_link"].iloc[k]), True), (" during ", False)]
                if "max_loading_link" in sim.columns else [])
-        tiles.append(_tile("highest transient tie loading", f"{top:.1f} %",
+        tiles.append(_tile("transient tie loading", f"{top:.1f} %",
                            sub + [(str(sim["event"].iloc[k]) if "event" in sim.columns
                                    else "", True)], "bad" if top > 100 else ""))
     return {"name": _title(rf), "folder": str(rf.folder),
