@@ -8,6 +8,9 @@ exit code 2) naming file, row and column; readers stop at the first problem, so 
 one line. `complete=True` (the report: the folder as the tool wrote it) needs every column the
 tool always writes; `complete=False` (a hand-made allocation for simulate) needs only the core
 columns, fills the others with defaults and reads a blank true/false cell as "not said".
+
+Somewhat over 400 lines on purpose: one concept, reading a result folder back, from the cell
+types up to the folder's consistency; split, each half would need the other's details.
 """
 
 from __future__ import annotations
