@@ -155,3 +155,20 @@ def test_report_cli_on_a_bad_retune_json_is_one_line(solved, tmp_path, capsys): 
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "retune.json key units_changed: is not a number" in err[0]
     assert not (res_dir / REPORT_NAME).exists()
+
+
+def test_simulation_summary_columns_are_checked(solved, tmp_path):  # noqa: F811
+    """simulation_summary.csv has an open column set, but the columns the simulator documents
+    (docs/case-format.md, "Simulation outputs") must hold their kind: a word where the nadir
+    belongs is named by file, row and column; an unknown column is shown as it is."""
+    _, src = solved["snapshot"]
+    res_dir = fresh_copy(src, tmp_path / "out")
+    (res_dir / "simulation_summary.csv").write_text(
+        "event,nadir_hz,extra_note\ntrip_quill_wind,49.6,x\nharrow_load_drop,deep,y\n")
+    with pytest.raises(ReportError, match=r"simulation_summary\.csv row 3 column nadir_hz: "
+                                          r"is not a number: 'deep'"):
+        build_report(res_dir)
+    (res_dir / "simulation_summary.csv").write_text(
+        "event,nadir_hz,extra_note\ntrip_quill_wind,49.6,x\nharrow_load_drop,50.1,y\n")
+    page = build_report(res_dir).read_text(encoding="utf-8")
+    assert [r[2] for r in table_cells(page, "simulation-table")] == ["x", "y"]

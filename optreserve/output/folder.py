@@ -35,6 +35,7 @@ from optreserve.output.schemas import (
     PROPOSAL,
     RETUNE_NUMBERS,
     SCHEDULE_WIDE,
+    SIMULATION_SUMMARY_COLUMNS,
     SUMMARY_NUMBERS,
     Column,
 )
@@ -104,12 +105,36 @@ def _by_content(raw: pd.DataFrame) -> pd.DataFrame:
     return out
 
 
+def _check_open(path: Path, raw: pd.DataFrame, out: pd.DataFrame, row_lines: np.ndarray,
+                schema: dict[str, Column]) -> None:
+    """A table of open columns typed by content: the columns the schema names must hold what
+    it says (cells of another kind are an error), and text columns stay text."""
+    for name in raw.columns:
+        c = schema.get(name)
+        if c is None:
+            continue
+        s = raw[name].astype(str).str.strip()
+        if c.kind == "text":
+            out[name] = s.to_numpy(object)
+        elif c.kind == "bool":
+            bad = ~s.str.lower().isin(_TRUE | _FALSE | {""}).to_numpy()
+            if bad.any():
+                k = int(np.argmax(bad))
+                raise ResultFileError(path, f"is not true or false: {s.iloc[k]!r}",
+                                      int(row_lines[k]), name)
+        else:
+            _numbers(path, s, row_lines, name, c.kind, c)
+
+
 def read_table(path: Path, schema: dict[str, Column] | None, complete: bool = True,
-               extra_kind: str = "text", lines: bool = False) -> pd.DataFrame:
+               extra_kind: str = "text", lines: bool = False,
+               open_columns: bool = False) -> pd.DataFrame:
     """A result CSV with its columns typed; the first problem is a ResultFileError naming file,
     row (physical line) and column. schema None: typed by content. extra_kind: the kind of
     columns the schema does not name (schedule_wide.csv: "num"). lines: add a `_line` column
-    (physical line of each row) for later cross-checks."""
+    (physical line of each row) for later cross-checks. open_columns (a file other versions
+    may add columns to, simulation_summary.csv): typed by content, the schema's columns
+    checked against their kinds, none required."""
     path = Path(path)
     try:
         skip = _leading_comments(path)
@@ -133,8 +158,10 @@ def read_table(path: Path, schema: dict[str, Column] | None, complete: bool = Tr
     blank = (raw == "").all(axis=1) if raw.shape[1] else pd.Series(False, index=raw.index)
     raw = raw[~blank]
     row_lines = raw.index.to_numpy() + 1 + header_line  # header line + comments above it
-    if schema is None:
+    if schema is None or open_columns:
         out = _by_content(raw)
+        if schema is not None:
+            _check_open(path, raw, out, row_lines, schema)
     else:
         out = _typed(path, raw, row_lines, schema, complete, extra_kind)
     if lines:
@@ -415,7 +442,7 @@ def _read_simulation(rf: ResultFolder, has: set) -> None:
              f"{SIMULATION_DIR}/{SIMULATION_SUMMARY}"
              if (sub / SIMULATION_SUMMARY).is_file() else None)
     if where is not None:
-        rf.simulation = read_table(f / where, None)
+        rf.simulation = read_table(f / where, SIMULATION_SUMMARY_COLUMNS, open_columns=True)
         rf.simulation_file = where
         if ref is not None and (f / where).stat().st_mtime < ref.stat().st_mtime:
             rf.notes.append(f"{where} is older than summary.json: the simulation may belong "

@@ -69,13 +69,25 @@ BEFORE_AFTER = _cols(
     Column("loading_before_pct", "num?", always=False),
     Column("worst_link_after", "text", always=False),
     Column("loading_after_pct", "num?", always=False))
+# simulation_summary.csv (docs/case-format.md, "Simulation outputs"): an open column set, typed
+# by content; these columns are checked. Blank cells are allowed everywhere (nadir_ok and
+# rocof_ok are blank when that limit is not set).
+SIMULATION_SUMMARY_COLUMNS = _cols(*(
+    [Column(n, "text", always=False) for n in ("event", "period", "kind", "area", "nadir_area",
+                                                "rocof_area", "max_loading_link")]
+    + [Column(n, "num?", always=False) for n in (
+        "size_mw", "nadir_hz", "nadir_time_s", "rocof_hz_per_s", "rocof_estimate_hz_per_s",
+        "nadir_ramp_estimate_hz", "settled_frequency_hz", "steady_state_frequency_hz",
+        "duration_s", "max_link_loading_pct")]
+    + [Column(n, "bool", always=False) for n in ("flat_at_end", "settled_ok", "nadir_ok",
+                                                  "rocof_ok", "link_ok")]))
 # schedule_wide.csv: unit, direction, then one numeric column per period
 SCHEDULE_WIDE = _cols(Column("unit", "text"), Column("direction", "text"))
 SCHEMAS = {"allocation.csv": ALLOCATION, "events.csv": EVENTS, "links.csv": LINKS,
            "diagnosis.csv": DIAGNOSIS, "proposal.csv": PROPOSAL,
            "before_after.csv": BEFORE_AFTER, "schedule_wide.csv": SCHEDULE_WIDE}
-# Files of other studies (prices.csv, simulation_summary.csv) have open column sets: they are
-# typed by content (read_table with schema None).
+# prices.csv has an open column set (per area, per period, prices of every kind): typed by
+# content (read_table with schema None).
 
 SUMMARY_NUMBERS = ("objective_per_h", "objective_total", "objective_with_penalty",
                    "change_penalty", "mip_gap", "headroom_up_mw", "headroom_down_mw",
