@@ -53,6 +53,15 @@ def test_retune_folder_report_shows_the_proposal(tmp_path):
                 float(p[col]))
     changed = sum(p["change"] != "unchanged" for p in prop)
     assert f"Proposal per unit ({changed} of {len(prop)} changed)" in page
+    ba = _rows(out / "before_after.csv")
+    got = table_cells(page, "before-after-table")
+    assert [r[0] for r in got] == [b["event"] for b in ba]
+    for r, b in zip(got, ba):  # margins in mHz on the page, Hz in the file
+        assert float(r[4]) == pytest.approx(float(b["margin_after_hz"]) * 1000)
+    tbody = re.search(r'<table id="before-after-table".*?</table>', page, re.DOTALL).group(0)
+    hot = re.findall(r'<tr class="hot"><td>([^<]*)</td>', tbody)
+    assert hot == [b["event"] for b in ba
+                   if b["margin_before_hz"] == "" or float(b["margin_before_hz"]) < 0]
     assert page.index('id="retune"') < page.index('id="cost"')
     assert 'href="#retune"' in page
     assert "not operating instructions" in page
@@ -172,3 +181,22 @@ def test_simulation_summary_columns_are_checked(solved, tmp_path):  # noqa: F811
         "event,nadir_hz,extra_note\ntrip_quill_wind,49.6,x\nharrow_load_drop,50.1,y\n")
     page = build_report(res_dir).read_text(encoding="utf-8")
     assert [r[2] for r in table_cells(page, "simulation-table")] == ["x", "y"]
+
+
+def test_warnings_recorded_in_summary_are_shown(solved, tmp_path):  # noqa: F811
+    """Warnings are part of the result: a `warnings` list in summary.json appears on the page;
+    a `warnings` that is not a list of text is a bad file (exit code 2)."""
+    import json
+
+    _, src = solved["snapshot"]
+    res_dir = fresh_copy(src, tmp_path / "out")
+    s = json.loads((res_dir / "summary.json").read_text())
+    s["warnings"] = ["units.csv row 1 column price_up_per_mwh: unknown column ignored"]
+    (res_dir / "summary.json").write_text(json.dumps(s))
+    page = build_report(res_dir).read_text(encoding="utf-8")
+    assert "Warnings recorded with the result" in page
+    assert "price_up_per_mwh: unknown column ignored" in page
+    s["warnings"] = "oops"
+    (res_dir / "summary.json").write_text(json.dumps(s))
+    with pytest.raises(ReportError, match=r"summary\.json key warnings: is not a list of text"):
+        build_report(res_dir)

@@ -29,6 +29,7 @@ from optreserve.errors import CaseError, Problem
 from optreserve.output.allocation_check import allocation_problems, check_allocation
 from optreserve.output.schemas import (
     ALLOCATION,
+    BEFORE_AFTER,
     DIAGNOSIS,
     EVENTS,
     LINKS,
@@ -255,17 +256,25 @@ def read_json(path: Path, numbers: tuple = (), status: bool = False) -> dict:
     return data
 
 
+def _text_list(data: dict, key: str, path: Path) -> None:
+    v = data.get(key)
+    if v is not None and not (isinstance(v, list) and all(isinstance(x, str) for x in v)):
+        raise ResultFileError(f"{path} key {key}", "is not a list of text")
+
+
 def read_summary(path: Path) -> dict:
-    """summary.json of a solve (a text status, numbers where numbers belong)."""
-    return read_json(path, SUMMARY_NUMBERS, status=True)
+    """summary.json of a solve (a text status, numbers where numbers belong, warnings as a
+    list of text)."""
+    data = read_json(path, SUMMARY_NUMBERS, status=True)
+    for key in ("warnings", "solver_warnings"):
+        _text_list(data, key, path)
+    return data
 
 
 def read_retune(path: Path) -> dict:
     """retune.json of a retune folder."""
     data = read_json(path, RETUNE_NUMBERS)
-    v = data.get("violations_before")
-    if v is not None and not (isinstance(v, list) and all(isinstance(x, str) for x in v)):
-        raise ResultFileError(f"{path} key violations_before", "is not a list of text")
+    _text_list(data, "violations_before", path)
     return data
 
 
@@ -337,6 +346,7 @@ class ResultFolder:
     prices: pd.DataFrame | None = None  # prices.csv, per area (and period), when written
     proposal: pd.DataFrame | None = None  # proposal.csv of a retune folder
     retune: dict | None = None  # retune.json of a retune folder
+    before_after: pd.DataFrame | None = None  # before_after.csv of a retune folder
     sim_images: list = field(default_factory=list)  # (file name, png bytes)
     case: object = None
     case_dir: Path | None = None
@@ -407,6 +417,8 @@ def read_result(result_dir, case_dir=None) -> ResultFolder:
             rf.proposal = read_table(folder / "proposal.csv", PROPOSAL)
             if "retune.json" in has:
                 rf.retune = read_retune(folder / "retune.json")
+            if "before_after.csv" in has:
+                rf.before_after = read_table(folder / "before_after.csv", BEFORE_AFTER)
     if rf.solved and "prices.csv" in has:
         rf.prices = read_table(folder / "prices.csv", None)
     _read_simulation(rf, has)

@@ -151,7 +151,9 @@ def section_case(rf: ResultFolder) -> dict:
                                         (s.get("timings_s") or {}).items()
                                         if isinstance(v, (int, float)))),
                   ("written by", f"optreserve {s.get('optreserve_version', '?')}")]
-    return {"facts": _facts(pairs), "areas": _areas_table(rf) if rf.solved else None}
+    warnings = [str(w) for w in (s.get("warnings") or []) + (s.get("solver_warnings") or [])]
+    return {"facts": _facts(pairs), "areas": _areas_table(rf) if rf.solved else None,
+            "warnings": warnings}
 
 
 def _verification_text(v: dict) -> str:

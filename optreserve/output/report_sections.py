@@ -208,4 +208,26 @@ def section_retune(rf: ResultFolder) -> dict:
     changed = (pr["change"] != "unchanged").to_numpy()
     return {"facts": facts, "violations": [str(v) for v in r.get("violations_before") or []],
             "table": table(pr, cols, "proposal-table", on=changed, tall=True),
-            "changed": int(changed.sum()), "units": len(pr)}
+            "changed": int(changed.sum()), "units": len(pr),
+            "before_after": _before_after(rf.before_after)}
+
+
+def _before_after(ba: pd.DataFrame | None) -> dict | None:
+    """before_after.csv: per event (and period) the settled frequency and margin with today's
+    and with the proposed settings; red where today's settings break the limit."""
+    if ba is None or not len(ba):
+        return None
+    df = ba.assign(margin_before_mhz=ba["margin_before_hz"] * 1000,
+                   margin_after_mhz=ba["margin_after_hz"] * 1000)
+    cols = [Col("event", "event")] + ([Col("period", "period")] if "period" in df else []) + [
+        Col("settled_frequency_before_hz", "settled today", ".4f", "Hz"),
+        Col("settled_frequency_after_hz", "settled as proposed", ".4f", "Hz"),
+        Col("margin_before_mhz", "margin today", ".1f", "mHz"),
+        Col("margin_after_mhz", "margin as proposed", ".1f", "mHz")]
+    if "worst_link_after" in df:
+        cols += [Col("worst_link_before", "most loaded link today"),
+                 Col("loading_before_pct", "loading today", ".1f", "%"),
+                 Col("worst_link_after", "most loaded link as proposed"),
+                 Col("loading_after_pct", "loading as proposed", ".1f", "%")]
+    broken = (df["margin_before_hz"].isna() | (df["margin_before_hz"] < 0)).to_numpy()
+    return table(df, cols, "before-after-table", hot=broken, tall=True)
