@@ -66,7 +66,7 @@ def damping_mw_per_hz(rf: ResultFolder, period) -> dict | None:
     return dict(zip(rf.case.areas["area"], np.asarray(d, float) / 100.0))
 
 
-def tightest_period(rf: ResultFolder):
+def tightest_period(rf: ResultFolder) -> object | None:
     """The period of the event instance with the least margin (None for a snapshot)."""
     if not rf.horizon or not len(rf.events):
         return rf.periods[0] if rf.horizon else None

@@ -317,8 +317,6 @@ def read_allocation(path: str | Path, case: Case) -> pd.DataFrame:
     return df
 
 
-
-
 # ------------------------------------------------------------------ a whole result folder
 _CASE_KEYS = ("case_dir", "case_path", "case_folder")
 SIMULATION_SUMMARY = "simulation_summary.csv"

@@ -13,8 +13,14 @@ import html
 import io
 import math
 import re
+from collections.abc import Callable
+from typing import TYPE_CHECKING
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from matplotlib.colors import Colormap
+    from matplotlib.figure import Figure
 
 # "Slate and signal": warm paper, ink-blue text, teal for what the allocation does, amber for
 # limits, brick red where a limit is reached.
@@ -47,8 +53,7 @@ RC = {
 }
 
 
-
-def styled(name: str):
+def styled(name: str) -> Callable:
     """Decorator: draw the plot inside the report's matplotlib style; the SVG ids get a salt
     of their own per plot so that several inline SVGs never share an id."""
     def wrap(fn):
@@ -62,7 +67,7 @@ def styled(name: str):
     return wrap
 
 
-def new_figure(width_in: float, height_in: float):
+def new_figure(width_in: float, height_in: float) -> Figure:
     from matplotlib.figure import Figure  # no pyplot: no GUI backend, no global state
 
     return Figure(figsize=(width_in, height_in), layout="constrained")
@@ -115,7 +120,7 @@ def thin_ticks(n: int, most: int = 13) -> np.ndarray:
     return np.arange(0, n, step)
 
 
-def loading_cmap():
+def loading_cmap() -> Colormap:
     from matplotlib.colors import LinearSegmentedColormap
 
     return LinearSegmentedColormap.from_list(
@@ -123,8 +128,7 @@ def loading_cmap():
                                (0.95, "#d3741f"), (1.0, ALERT)]).with_extremes(over="#7d1f2f")
 
 
-
-def heat_cmap():
+def heat_cmap() -> Colormap:
     from matplotlib.colors import LinearSegmentedColormap
 
     return LinearSegmentedColormap.from_list(
