@@ -102,7 +102,15 @@ def test_transient_tie_loading_of_a_simulation_subfolder(solved, tmp_path):  # n
         "event,nadir_hz,max_link_loading_pct,max_loading_link,settled_ok,link_ok\n"
         "trip_quill_wind,49.70,124.0,harrow-quill,true,false\n"
         "harrow_load_drop,50.10,71.0,harrow-quill,true,true\n")
+    (res_dir / "simulation" / "simulation_links.csv").write_text(
+        "# a caution line above the header\n"
+        "event,link,limit_mw,max_flow_mw,max_loading_pct,at_time_s,link_ok\n"
+        "trip_quill_wind,harrow-quill,150,186,124.0,3.1,false\n"
+        "harrow_load_drop,harrow-quill,150,106.5,71.0,2.2,true\n")
     page = build_report(res_dir).read_text(encoding="utf-8")
+    per_link = re.search(r'<table id="transient-links-table".*?</table>', page,
+                         re.DOTALL).group(0)
+    assert re.findall(r'<tr class="hot"><td>([^<]*)</td>', per_link) == ["trip_quill_wind"]
     ties = re.search(r'<table id="transient-ties-table".*?</table>', page, re.DOTALL).group(0)
     assert re.search(r'<tr class="hot"><td>trip_quill_wind', ties)
     assert not re.search(r'<tr class="hot"><td>harrow_load_drop', ties)

@@ -36,6 +36,7 @@ from optreserve.output.schemas import (
     PROPOSAL,
     RETUNE_NUMBERS,
     SCHEDULE_WIDE,
+    SIMULATION_LINKS_COLUMNS,
     SIMULATION_SUMMARY_COLUMNS,
     SUMMARY_NUMBERS,
     Column,
@@ -320,6 +321,7 @@ def read_allocation(path: str | Path, case: Case) -> pd.DataFrame:
 # ------------------------------------------------------------------ a whole result folder
 _CASE_KEYS = ("case_dir", "case_path", "case_folder")
 SIMULATION_SUMMARY = "simulation_summary.csv"
+SIMULATION_LINKS = "simulation_links.csv"
 SIMULATION_DIR = "simulation"  # a sub-folder `simulate --out RESULT_DIR/simulation` wrote
 
 
@@ -341,6 +343,7 @@ class ResultFolder:
     diagnosis: pd.DataFrame | None = None
     simulation: pd.DataFrame | None = None
     simulation_file: str | None = None  # where simulation came from, relative to folder
+    simulation_links: pd.DataFrame | None = None  # simulation_links.csv beside it, if any
     prices: pd.DataFrame | None = None  # prices.csv, per area (and period), when written
     proposal: pd.DataFrame | None = None  # proposal.csv of a retune folder
     retune: dict | None = None  # retune.json of a retune folder
@@ -443,8 +446,8 @@ def _check_consistent(rf: ResultFolder) -> None:
 
 
 def _read_simulation(rf: ResultFolder, has: set) -> None:
-    """simulation_summary.csv (the folder's own, else one in simulation/) and the PNG plots of
-    the folder and of simulation/."""
+    """simulation_summary.csv (the folder's own, else one in simulation/) with
+    simulation_links.csv beside it, and the PNG plots of the folder and of simulation/."""
     f = rf.folder
     sub = f / SIMULATION_DIR
     ref = f / "summary.json" if "summary.json" in has else None
@@ -454,6 +457,9 @@ def _read_simulation(rf: ResultFolder, has: set) -> None:
     if where is not None:
         rf.simulation = read_table(f / where, SIMULATION_SUMMARY_COLUMNS, open_columns=True)
         rf.simulation_file = where
+        links = (f / where).with_name(SIMULATION_LINKS)
+        if links.is_file():
+            rf.simulation_links = read_table(links, SIMULATION_LINKS_COLUMNS, open_columns=True)
         if ref is not None and (f / where).stat().st_mtime < ref.stat().st_mtime:
             rf.notes.append(f"{where} is older than summary.json: the simulation may belong "
                             "to an earlier allocation.")

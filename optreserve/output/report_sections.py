@@ -165,8 +165,21 @@ def _transient_ties(sim: pd.DataFrame) -> dict | None:
             "over": int(over.sum())}
 
 
+def _transient_links(lk: pd.DataFrame | None) -> dict | None:
+    """simulation_links.csv: every link after every simulated event, red above its limit."""
+    if lk is None or not len(lk) or "max_loading_pct" not in lk.columns \
+            or not pd.api.types.is_numeric_dtype(lk["max_loading_pct"]):
+        return None
+    over = lk["max_loading_pct"].to_numpy(float) > 100.0
+    if "link_ok" in lk.columns and pd.api.types.is_bool_dtype(lk["link_ok"]):
+        over |= ~lk["link_ok"].to_numpy(bool)
+    return {"table": table(lk, generic_cols(lk), "transient-links-table", hot=over,
+                           warm=lk["max_loading_pct"].to_numpy(float) >= 90, tall=True),
+            "rows": len(lk)}
+
+
 def section_simulation(rf: ResultFolder) -> dict:
-    out = {"table": None, "checks": [], "images": [], "ties": None,
+    out = {"table": None, "checks": [], "images": [], "ties": None, "links": None,
            "file": rf.simulation_file}
     if rf.simulation is not None:
         sim = rf.simulation
@@ -176,6 +189,7 @@ def section_simulation(rf: ResultFolder) -> dict:
         out["table"] = table(sim, generic_cols(sim), "simulation-table", hot=failed)
         out["checks"] = [str(c) for c in checks]
         out["ties"] = _transient_ties(sim)
+    out["links"] = _transient_links(rf.simulation_links)
     out["images"] = [(name, data) for name, data in rf.sim_images]
     return out
 

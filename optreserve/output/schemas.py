@@ -81,6 +81,13 @@ SIMULATION_SUMMARY_COLUMNS = _cols(*(
         "duration_s", "max_link_loading_pct")]
     + [Column(n, "bool", always=False) for n in ("flat_at_end", "settled_ok", "nadir_ok",
                                                   "rocof_ok", "link_ok")]))
+# simulation_links.csv, when the simulator writes it: per event (and period) and link the
+# highest flow during the run against the link's limit.
+SIMULATION_LINKS_COLUMNS = _cols(*(
+    [Column(n, "text", always=False) for n in ("event", "period", "link")]
+    + [Column(n, "num?", always=False) for n in ("limit_mw", "max_flow_mw", "max_loading_pct",
+                                                  "at_time_s")]
+    + [Column("link_ok", "bool", always=False)]))
 # schedule_wide.csv: unit, direction, then one numeric column per period
 SCHEDULE_WIDE = _cols(Column("unit", "text"), Column("direction", "text"))
 SCHEMAS = {"allocation.csv": ALLOCATION, "events.csv": EVENTS, "links.csv": LINKS,
