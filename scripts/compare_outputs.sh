@@ -10,6 +10,7 @@ py="${PYTHON:-$root/.venv/bin/python}"
 work="$(mktemp -d)"
 trap 'git -C "$root" worktree remove --force "$work/old" >/dev/null 2>&1 || true; rm -rf "$work"' EXIT
 git -C "$root" worktree add -q --detach "$work/old" "$old_rev"
+cd "$work"  # python -m puts the current folder first on sys.path: not the tree under test
 run() {  # $1 = source tree, $2 = output folder
   local src="$1" out="$2"
   PYTHONPATH="$src" "$py" -m optreserve generate --units 60 --periods 8 --seed 3 --out "$out/gen-case" --quiet
