@@ -208,3 +208,17 @@ def test_warnings_recorded_in_summary_are_shown(solved, tmp_path):  # noqa: F811
     (res_dir / "summary.json").write_text(json.dumps(s))
     with pytest.raises(ReportError, match=r"summary\.json key warnings: is not a list of text"):
         build_report(res_dir)
+
+
+def test_text_from_the_files_is_escaped(tmp_path):
+    """Autoescaping (Jinja2 docs, "HTML Escaping"): markup in a result file is shown as text,
+    never run as part of the page."""
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "diagnosis.csv").write_text(
+        "family,element,event,short_mw,excess_hz,over_mw\n"
+        'link,<script>alert(1)</script>,"<img src=x onerror=alert(2)>",0,0,0.5\n')
+    page = build_report(out).read_text(encoding="utf-8")
+    assert "<script>alert(1)" not in page and "<img src=x" not in page
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in page
+    assert page.count("<script>") == 1  # the page's own sorting script only
