@@ -229,7 +229,8 @@ def _add_report_parser(sub) -> None:
                        description="Write report.html into a result folder: case summary, "
                                    "cost and prices, droop and headroom per unit, droop "
                                    "characteristics, settled frequency and link loading per "
-                                   "event, horizon heat maps and any simulation plots. One "
+                                   "event, horizon heat maps, a retune folder's proposal and "
+                                   "any simulation results (with transient tie loading). One "
                                    "file, no external assets; it opens offline.")
     r.add_argument("result", metavar="RESULT_DIR", help="folder written by solve --out")
     r.add_argument("--case", metavar="DIR", help="the case folder the result was solved from "

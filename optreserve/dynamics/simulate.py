@@ -37,8 +37,9 @@ from scipy.integrate import solve_ivp
 from scipy.optimize import minimize_scalar
 
 from optreserve.case.data import Case
-from optreserve.case.reader import Col, _Collector, _read_csv, _typed_table
+from optreserve.case.reader import _Collector
 from optreserve.errors import CaseError, OptreserveError, Problem
+from optreserve.output.folder import allocation_problems, read_allocation  # noqa: F401
 from optreserve.output.results import CAUTION, write_table
 from optreserve.output.staging import staged_output
 from optreserve.verify.settle import settle_instances
@@ -89,109 +90,12 @@ class SimulationError(OptreserveError):
 
 
 # ------------------------------------------------------------------ allocation input
-_ALLOC_COLS = [
-    Col("unit", "text", True),
-    Col("area", "text", True),
-    Col("period", "text", False, ""),
-    Col("provides", "bool", False, None),
-    Col("droop_pct", "float", False, math.nan, check=lambda v: None if v > 0 else "must be > 0"),
-    Col("gain_mw_per_hz", "float", True, check=lambda v: None if v >= 0 else "must be >= 0"),
-    Col("headroom_up_mw", "float", True, check=lambda v: None if v >= 0 else "must be >= 0"),
-    Col("headroom_down_mw", "float", True, check=lambda v: None if v >= 0 else "must be >= 0"),
-    Col("cost_per_h", "float", False, math.nan),
-]
-
-
-def read_allocation(path: str | Path, case: Case) -> pd.DataFrame:
-    """Read allocation.csv (a folder written by `optreserve solve --out`, or the file itself)
-    and check it against the case. Raises CaseError naming file, row and column."""
-    p = Path(path)
-    if p.is_dir():
-        p = p / ALLOCATION_FILE
-    col = _Collector()
-    if not p.is_file():
-        col.error(str(p), "is missing (expected the allocation written by optreserve solve "
-                  "--out)")
-        col.raise_if_any()
-    t = _read_csv(p, str(p), col)
-    df = _typed_table(t, _ALLOC_COLS, col) if t is not None else None
-    col.raise_if_any()
-    df.attrs["file"] = str(p)
-    df.attrs["warnings"] = list(col.warnings)
-    _check_allocation(case, df, str(p), col)
-    col.raise_if_any()
-    return df
-
-
+# Reading and checking an allocation is the result-folder reader's job (output/folder.py);
+# read_allocation stays importable from here.
 def _check_allocation(case: Case, df: pd.DataFrame, file: str, col: _Collector) -> None:
     """Cross-check an allocation table against the case (collects problems, raises nothing)."""
-    lines = (df["_line"].to_numpy() if "_line" in df.columns
-             else np.arange(len(df), dtype=np.int64) + 2)
-    for c in ("unit", "area", "gain_mw_per_hz", "headroom_up_mw", "headroom_down_mw"):
-        if c not in df.columns:
-            col.error(file, "required column is missing", 1, c)
-    if col.problems:
-        return
-    u = case.units
-    upos = {x: k for k, x in enumerate(u["unit"])}
-    units = df["unit"].astype(str).to_numpy(object)
-    i = np.array([upos.get(x, -1) for x in units])
-    for r in np.nonzero(i < 0)[0][:50]:
-        col.error(file, f"unknown unit '{units[r][:40]}' (not in units.csv of the case)",
-                  int(lines[r]), "unit")
-    ok = i >= 0
-    areas = df["area"].astype(str).to_numpy(object)
-    case_area = u["area"].to_numpy(object)
-    for r in np.nonzero(ok)[0][areas[ok] != case_area[i[ok]]][:50]:
-        col.error(file, f"unit '{units[r]}' is in area '{case_area[i[r]]}' in the case, not "
-                  f"'{areas[r][:40]}'", int(lines[r]), "area")
-    per = (df["period"].fillna("").astype(str).to_numpy(object) if "period" in df.columns
-           else np.full(len(df), "", dtype=object))
-    labels = [str(p) for p in case.periods]
-    if case.is_horizon and (per == "").all():
-        col.error(file, "the case has periods: a period column with the case's period labels "
-                  "is required", 1, "period")
-        return
-    if case.is_horizon:
-        known = set(labels)
-        for r in np.nonzero(~pd.Series(per).isin(known).to_numpy())[0][:50]:
-            col.error(file, f"period '{per[r][:40]}' is not a period of the case", int(lines[r]),
-                      "period")
-    else:
-        for r in np.nonzero(per != "")[0][:1]:
-            col.error(file, "the case is a single snapshot: the allocation must not have "
-                      "periods", int(lines[r]), "period")
-    key = pd.Series(units + "\x00" + per)
-    dup = key.duplicated().to_numpy() & ok
-    for r in np.nonzero(dup)[0][:50]:
-        col.error(file, f"unit '{units[r]}' appears twice" + (f" for period '{per[r]}'"
-                  if per[r] else ""), int(lines[r]), "unit")
-    gain = df["gain_mw_per_hz"].to_numpy(float)
-    if "provides" in df.columns:
-        prov = df["provides"].to_numpy(object)
-        said_no = prov == False  # elementwise on an object array: a blank (None) is not "no"
-        for r in np.nonzero(said_no & (gain > 0))[0][:50]:
-            col.error(file, f"provides is false but gain_mw_per_hz is {gain[r]:g}",
-                      int(lines[r]), "provides")
-    if "droop_pct" in df.columns:
-        droop = df["droop_pct"].to_numpy(float)
-        cap = u["capacity_mw"].to_numpy(float)[np.maximum(i, 0)]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            expect = cap / (droop / 100.0 * case.nominal_frequency_hz)
-        bad = ok & (gain > 0) & np.isfinite(droop) & (
-            np.abs(expect - gain) > 1e-4 * np.maximum(gain, 1.0))
-        for r in np.nonzero(bad)[0][:50]:
-            col.error(file, f"droop_pct {droop[r]:g} on capacity {cap[r]:g} MW gives "
-                      f"{expect[r]:.6g} MW/Hz, not gain_mw_per_hz {gain[r]:.6g}: allocation "
-                      "of another case?", int(lines[r]), "droop_pct")
-    if col.problems:
-        return
-    need = [(x, p) for p in (labels or [""]) for x in u["unit"]]
-    have = set(zip(units, per))
-    missing = [(x, p) for x, p in need if (x, p) not in have]
-    for x, p in missing[:50]:
-        col.error(file, f"no row for unit '{x}'" + (f" in period '{p}'" if p else ""), None,
-                  "unit")
+    for p in allocation_problems(case, df, file):
+        col.error(p.file, p.message, p.row, p.column)
 
 
 def allocation_arrays(case: Case, allocation: pd.DataFrame, t: int):
