@@ -15,6 +15,10 @@ Bounds (why these numbers; docs/case-format.md, "Bounds"):
   synchronous area (continental Europe peaks near 0.5 TW, from memory). Larger values are
   typing slips (3e19 MW), and at that scale the solver's absolute tolerances stop meaning
   anything against the 0.5 MW / 0.5 mHz verification.
+* Positive sizes (capacity_mw, limit_mw) >= MW_MIN = 0.001 MW (1 kW), and no non-zero value
+  of a bounded column below TINY = 1e-9 in magnitude (write 0): such values are far below
+  every tolerance (0.5 MW, 0.5 mHz) and below the coefficients HiGHS keeps (it drops matrix
+  values under 1e-9, from memory); a 1e-20 MW limit made the diagnosis fail.
 * Prices and penalties <= PRICE_MAX = 1e9 per MW·h (or per change): far above any market
   price cap (a few thousand per MWh, from memory), still well inside what HiGHS treats as
   a finite cost (its infinite_cost is 1e20).
@@ -44,6 +48,8 @@ from dataclasses import dataclass
 from typing import Any
 
 MW_MAX = 1.0e6
+MW_MIN = 1.0e-3
+TINY = 1.0e-9
 PRICE_MAX = 1.0e9
 REACTANCE_MIN_PU, REACTANCE_MAX_PU = 1.0e-6, 1.0e3
 REACTANCE_SPREAD = 1.0e6
@@ -93,7 +99,7 @@ _MW: dict = {"lo": -MW_MAX, "hi": MW_MAX}
 UNIT_COLS: list[Col] = [
     Col("unit", "id", True, meaning="unique id"),
     Col("area", "text", True, meaning="an area in areas.csv", per_period=False),
-    Col("capacity_mw", "float", True, **_POS, hi=MW_MAX, unit="MW", per_period=False,
+    Col("capacity_mw", "float", True, lo=MW_MIN, hi=MW_MAX, unit="MW", per_period=False,
         meaning="rated active power; the droop is defined on this base"),
     Col("output_mw", "float", True, **_MW, unit="MW", per_period=True,
         meaning="scheduled output"),
@@ -142,7 +148,7 @@ LINK_COLS: list[Col] = [
     Col("to_area", "text", True, per_period=False, meaning="area at the end"),
     Col("reactance_pu", "float", True, lo=REACTANCE_MIN_PU, hi=REACTANCE_MAX_PU, unit="pu",
         per_period=True, meaning="series reactance; flows divide by DC power-flow rules"),
-    Col("limit_mw", "float", True, **_POS, hi=MW_MAX, unit="MW", per_period=True,
+    Col("limit_mw", "float", True, lo=MW_MIN, hi=MW_MAX, unit="MW", per_period=True,
         meaning="post-event flow limit"),
     Col("flow_mw", "float", False, 0.0, **_MW, unit="MW", per_period=True,
         meaning="pre-event flow, positive from from_area to to_area"),

@@ -24,7 +24,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from optreserve.case.columns import Col
+from optreserve.case.columns import TINY, Col
 from optreserve.case.problems import _Collector, suggest
 
 TRUE_WORDS = {"true", "1", "yes", "y", "t"}
@@ -101,9 +101,11 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
         return None
     ends = grid == _END
     n_fields = ends.argmax(axis=1)
-    lost = ~ends.any(axis=1) | (len(grid) != len(lines))
+    lost = ~ends.any(axis=1)
     if '"' in text:  # only a quoted value can hold a line break
         lost |= np.array([any("\n" in c for c in r) for r in grid], dtype=bool)
+    if len(grid) != len(lines) and not lost.any():
+        lost[-1] = True
     if lost.any():
         k = int(np.nonzero(lost)[0][0])
         col.error(label, "a quoted value spans more than one line (line breaks are not allowed "
@@ -163,11 +165,17 @@ def _not_a_number(x: str, ok_fmt: bool) -> str:
     return "is not a number"
 
 
+def _bounded(c: Col) -> bool:
+    return c.lo is not None or c.hi is not None
+
+
 def _bound_message(c: Col, v: float) -> str | None:
     if c.lo is not None and (v <= c.lo if c.lo_open else v < c.lo):
         return f"must be {'>' if c.lo_open else '>='} {c.lo:g}"
     if c.hi is not None and v > c.hi:
         return f"must be <= {c.hi:g}"
+    if _bounded(c) and v != 0 and abs(v) < TINY:
+        return f"is too small to mean anything (non-zero but below {TINY:g} in magnitude; write 0)"
     return None
 
 
@@ -254,6 +262,8 @@ def _typed_float(c: Col, raw, empty, lines, file, col) -> np.ndarray:
             out |= (vals <= c.lo) if c.lo_open else (vals < c.lo)
         if c.hi is not None:
             out |= vals > c.hi
+        if _bounded(c):
+            out |= (vals != 0) & (np.abs(vals) < TINY)
     suspect = given & out if c.check is None else given
     for r in np.nonzero(suspect)[0]:
         msg = _bound_message(c, vals[r])
