@@ -54,11 +54,11 @@ EXAMPLES = [  # (file, old text, new text, where the error must point, words in 
      "events.csv row 2 column size_mw", "exceeds the capacity_mw 500"),
     ("events.csv", "trip_b1,unit_trip,Brook_1,,", "trip_b1,unit_trip,Brook_1,,-50",
      "events.csv row 2 column size_mw", "can absorb"),
-    ("events.csv", "South,120", "South,3e19", "events.csv row 3 column size_mw", "<= 1e+06"),
-    ("events.csv", "South,120", "South,1e308", "events.csv row 3 column size_mw", "<= 1e+06"),
-    ("events.csv", "North,-80", "North,-1e308", "events.csv row 4 column size_mw", ">= -1e+06"),
-    ("links.csv", "0.1,400", "5e-324,400", "links.csv row 2 column reactance_pu", ">= 1e-06"),
-    ("links.csv", "0.1,400", "1e-20,400", "links.csv row 2 column reactance_pu", ">= 1e-06"),
+    ("events.csv", "South,120", "South,3e19", "events.csv row 3 column size_mw", "<= 1e6"),
+    ("events.csv", "South,120", "South,1e308", "events.csv row 3 column size_mw", "<= 1e6"),
+    ("events.csv", "North,-80", "North,-1e308", "events.csv row 4 column size_mw", ">= -1e6"),
+    ("links.csv", "0.1,400", "5e-324,400", "links.csv row 2 column reactance_pu", ">= 1e-6"),
+    ("links.csv", "0.1,400", "1e-20,400", "links.csv row 2 column reactance_pu", ">= 1e-6"),
     ("links.csv", "0.1,400", "0.1,1e-20", "links.csv row 2 column limit_mw", ">= 0.001"),
 ]
 

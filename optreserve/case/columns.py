@@ -86,9 +86,15 @@ class Col:
 
     def bound_text(self) -> str:
         """The bounds as docs/case-format.md states them ("" when unbounded)."""
-        lo = "" if self.lo is None else f"{'>' if self.lo_open else '>='} {self.lo:g}"
-        hi = "" if self.hi is None else f"<= {self.hi:g}"
+        lo = "" if self.lo is None else f"{'>' if self.lo_open else '>='} {num_text(self.lo)}"
+        hi = "" if self.hi is None else f"<= {num_text(self.hi)}"
         return ", ".join(x for x in (lo, hi) if x)
+
+
+def num_text(v: float) -> str:
+    """A bound as people write it: 0.001, 600, 1e6, 1e-6 (not 1e+06)."""
+    s = f"{v:g}"
+    return s.replace("e+0", "e").replace("e-0", "e-").replace("e+", "e")
 
 
 NAN = math.nan

@@ -24,7 +24,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from optreserve.case.columns import TINY, Col
+from optreserve.case.columns import TINY, Col, num_text
 from optreserve.case.problems import _Collector, suggest
 
 TRUE_WORDS = {"true", "1", "yes", "y", "t"}
@@ -171,11 +171,12 @@ def _bounded(c: Col) -> bool:
 
 def _bound_message(c: Col, v: float) -> str | None:
     if c.lo is not None and (v <= c.lo if c.lo_open else v < c.lo):
-        return f"must be {'>' if c.lo_open else '>='} {c.lo:g}"
+        return f"must be {'>' if c.lo_open else '>='} {num_text(c.lo)}"
     if c.hi is not None and v > c.hi:
-        return f"must be <= {c.hi:g}"
+        return f"must be <= {num_text(c.hi)}"
     if _bounded(c) and v != 0 and abs(v) < TINY:
-        return f"is too small to mean anything (non-zero but below {TINY:g} in magnitude; write 0)"
+        return (f"is too small to mean anything (non-zero but below {num_text(TINY)} in "
+                "magnitude; write 0)")
     return None
 
 

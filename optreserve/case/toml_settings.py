@@ -22,7 +22,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from optreserve.case.columns import DROOP_MAX_PCT, DROOP_MIN_PCT, PRICE_MAX
+from optreserve.case.columns import DROOP_MAX_PCT, DROOP_MIN_PCT, PRICE_MAX, num_text
 from optreserve.case.problems import _Collector, suggest
 
 UNKNOWN_SECTIONS = "__unknown_sections"  # key of the settings dict: misspelt section names
@@ -70,8 +70,8 @@ def _toml_line(text: str, section: str, key: str) -> int | None:
 
 
 def _bounds_text(k: Key) -> str:
-    lo = "" if k.lo is None else f"{'>' if k.lo_open else '>='} {k.lo:g}"
-    hi = "" if k.hi is None else f"<= {k.hi:g}"
+    lo = "" if k.lo is None else f"{'>' if k.lo_open else '>='} {num_text(k.lo)}"
+    hi = "" if k.hi is None else f"<= {num_text(k.hi)}"
     return " and ".join(x for x in (lo, hi) if x)
 
 
@@ -101,7 +101,7 @@ def _value(k: Key, v: Any) -> tuple[Any, str | None]:
         return (v, None) if isinstance(v, bool) else (None, f"must be true or false, got {v!r}")
     if k.kind == "int":
         if isinstance(v, bool) or not isinstance(v, int) or not _inside(k, v):
-            return None, (f"must be a whole number between {k.lo:g} and {k.hi:g}, got "
+            return None, (f"must be a whole number between {k.lo:g} and {k.hi:,.0f}, got "
                           f"{_short(v)}")
         return v, None
     if k.kind == "numlist":
