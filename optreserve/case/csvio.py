@@ -33,6 +33,7 @@ FALSE_WORDS = {"false", "0", "no", "n", "f"}
 # appended to every line before parsing: its position gives each row's field count (the C
 # parser pads short rows silently); a file containing it is refused (it never belongs in text)
 _END = "\x1e"
+_SPARE = 64  # extra fields a row may have beyond the header's (empty ones are tolerated)
 _ASCII_SPACE = re.compile(r"[\t\x0b\x0c\x1c-\x1f ]")  # ASCII text without these: no strip
 _NUM_CHARS = re.compile(r"[0-9eE+\-.,]*")
 _NUM_RE = re.compile(r"[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
@@ -87,7 +88,9 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
     if not lines:
         col.error(label, "is empty: a header row is required", row=1)
         return None
-    width_max = max(ln.count(",") for ln in lines) + 2  # quoted commas only overcount
+    # room for every field (quoted commas only overcount) plus the end mark, but not for
+    # thousands of stray commas on one line: such a row is reported by the parser instead
+    width_max = min(max(ln.count(",") for ln in lines), lines[0].count(",") + _SPARE) + 2
     try:
         grid = pd.read_csv(
             io.StringIO(f",{_END}\n".join(lines) + f",{_END}\n"), header=None,
@@ -95,19 +98,15 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
             index_col=False, skip_blank_lines=False, skipinitialspace=True,
             low_memory=False, engine="c").to_numpy(object)
     except (pd.errors.ParserError, ValueError) as exc:
-        m = re.search(r"row (\d+)", str(exc))
-        row = int(kept[min(int(m.group(1)), len(kept) - 1)]) if m else None
-        col.error(label, "cannot be parsed as CSV (an unclosed quote?)", row)
+        _parser_problem(str(exc), kept, label, col)
         return None
     ends = grid == _END
     n_fields = ends.argmax(axis=1)
-    lost = ~ends.any(axis=1)
-    if '"' in text:  # only a quoted value can hold a line break
-        lost |= np.array([any("\n" in c for c in r) for r in grid], dtype=bool)
-    if len(grid) != len(lines) and not lost.any():
-        lost[-1] = True
-    if lost.any():
-        k = int(np.nonzero(lost)[0][0])
+    if len(grid) != len(lines) or not ends.any(axis=1).all():
+        # a quoted value ran over a line break: two lines became one row, so the line numbers
+        # of the rows after it are unknown; the first such row is where the value starts
+        lost = ~ends.any(axis=1) | np.array([any("\n" in c for c in r) for r in grid])
+        k = int(np.nonzero(lost)[0][0]) if lost.any() else len(grid) - 1
         col.error(label, "a quoted value spans more than one line (line breaks are not allowed "
                   "inside a value)", int(kept[min(k, len(kept) - 1)]))
         return None
@@ -145,6 +144,19 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
         data, line_no = data[ok], line_no[ok]
     return _Table(label, header_line, header, [data[:, k] for k in range(width)],
                   np.asarray(line_no, dtype=np.int64))
+
+
+def _parser_problem(msg: str, kept: np.ndarray, label: str, col: _Collector) -> None:
+    """The C parser's own complaint, located on the physical line."""
+    m = re.search(r"Expected (\d+) fields in line (\d+), saw (\d+)", msg)
+    if m:
+        line = int(kept[min(int(m.group(2)) - 1, len(kept) - 1)])
+        col.error(label, f"has {int(m.group(3)) - 1} fields, far more than the header", line)
+        return
+    m = re.search(r"row (\d+)", msg)
+    row = int(kept[min(int(m.group(1)), len(kept) - 1)]) if m else None
+    col.error(label, "a quote opened on this row is never closed" if "EOF inside string" in msg
+              else f"cannot be parsed as CSV ({msg.split('. ')[-1][:80]})", row)
 
 
 def _parse_float(s: str) -> float | None:
