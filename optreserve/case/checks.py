@@ -122,7 +122,7 @@ def _check_events(ev: pd.DataFrame, file: str, units: pd.DataFrame, area_ids: se
                 if math.isnan(size):
                     size = unit_out[u]
                     from_output[len(sizes)] = True
-                else:
+                elif u in unit_cap:  # (a common-mode trip of several units is checked apart)
                     _check_trip_size(size, u, unit_cap[u], unit_min[u], file, line, col)
                 if size == 0:
                     col.warn(file, f"unit '{u}' trips at zero output: no disturbance", line,
@@ -163,13 +163,14 @@ def check_trip_signs(case: Case, lines: np.ndarray, file: str, col: _Collector) 
     applies to (losing a generating unit cannot raise the frequency); vectorised over the
     event instances."""
     ev = case.events
-    trip = (ev["kind"] == "unit_trip").to_numpy() & ~ev["size_from_output"].to_numpy(bool)
+    upos = {u: k for k, u in enumerate(case.units["unit"])}
+    trip = ((ev["kind"] == "unit_trip").to_numpy() & ~ev["size_from_output"].to_numpy(bool)
+            & ev["unit"].isin(upos).to_numpy())
     if not trip.any():
         return
     inst = case.instances()
     e = inst["event_index"].to_numpy()
     t = inst["t"].to_numpy()
-    upos = {u: k for k, u in enumerate(case.units["unit"])}
     j = np.array([upos.get(u, 0) for u in ev["unit"]], dtype=np.int64)[e]
     out = case.unit_matrix("output_mw").astype(float)[t, j]
     size = inst["size_mw"].to_numpy(float)

@@ -189,9 +189,14 @@ def declare(file: str, col: Col) -> None:
     table.append(col)
 
 
+# columns a later reader step derives from a declared one and keeps per period (for example
+# the products reader's provides_up from `provides`); they are not read from the file
+DERIVED_SERIES_COLS: dict[str, set[str]] = {"units": set(), "areas": set(), "links": set()}
+
+
 def series_columns(key: str) -> set[str]:
-    """Columns that may vary by period in KEY_by_period.csv."""
-    return {c.name for c in TABLES[f"{key}.csv"] if c.per_period}
+    """Columns that may vary by period in KEY_by_period.csv (plus derived ones kept)."""
+    return {c.name for c in TABLES[f"{key}.csv"] if c.per_period} | DERIVED_SERIES_COLS[key]
 
 
 def series_hints(key: str) -> dict[str, str]:

@@ -16,6 +16,7 @@ written with ASCII digits only.
 from __future__ import annotations
 
 import io
+import itertools
 import math
 import re
 from dataclasses import dataclass
@@ -88,15 +89,19 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
     if not lines:
         col.error(label, "is empty: a header row is required", row=1)
         return None
-    # room for every field (quoted commas only overcount) plus the end mark, but not for
-    # thousands of stray commas on one line: such a row is reported by the parser instead
-    width_max = min(max(ln.count(",") for ln in lines), lines[0].count(",") + _SPARE) + 2
+    marked = f",{_END}\n".join(lines) + f",{_END}\n"
+    # room for the header's fields plus the end mark; rows with more fields (empty ones at the
+    # end are tolerated) make the parser stop, and the parse is redone wide enough for them,
+    # but not for thousands of stray commas on one line (reported by the parser instead)
+    header_commas = lines[0].count(",")
     try:
-        grid = pd.read_csv(
-            io.StringIO(f",{_END}\n".join(lines) + f",{_END}\n"), header=None,
-            names=range(width_max), dtype=str, keep_default_na=False, na_filter=False,
-            index_col=False, skip_blank_lines=False, skipinitialspace=True,
-            low_memory=False, engine="c").to_numpy(object)
+        try:
+            grid = _parse(marked, header_commas + 2)
+        except pd.errors.ParserError as exc:
+            if "Expected" not in str(exc):
+                raise
+            widest = max(map(str.count, lines, itertools.repeat(",")))
+            grid = _parse(marked, min(widest, header_commas + _SPARE) + 2)
     except (pd.errors.ParserError, ValueError) as exc:
         _parser_problem(str(exc), kept, label, col)
         return None
@@ -144,6 +149,14 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
         data, line_no = data[ok], line_no[ok]
     return _Table(label, header_line, header, [data[:, k] for k in range(width)],
                   np.asarray(line_no, dtype=np.int64))
+
+
+def _parse(marked: str, width: int) -> np.ndarray:
+    """The C parser on the marked text: every cell as text, nothing guessed."""
+    return pd.read_csv(io.StringIO(marked), header=None, names=range(width), dtype=str,
+                       keep_default_na=False, na_filter=False, index_col=False,
+                       skip_blank_lines=False, skipinitialspace=True, low_memory=False,
+                       engine="c").to_numpy(object)
 
 
 def _parser_problem(msg: str, kept: np.ndarray, label: str, col: _Collector) -> None:
