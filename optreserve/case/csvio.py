@@ -93,7 +93,7 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
     # room for the header's fields plus the end mark; rows with more fields (empty ones at the
     # end are tolerated) make the parser stop, and the parse is redone wide enough for them,
     # but not for thousands of stray commas on one line (reported by the parser instead)
-    header_commas = lines[0].count(",")
+    header_commas = next((ln for ln in lines if ln.strip()), "").count(",")
     try:
         try:
             grid = _parse(marked, header_commas + 2)
