@@ -110,7 +110,7 @@ def test_base_case_is_feasible(tmp_path):
     assert _run(["solve", str(tmp_path / "case"), "--quiet"])[0] == 0
 
 
-@settings(max_examples=80, deadline=None, derandomize=True, database=None,
+@settings(max_examples=60, deadline=None, derandomize=True, database=None,
           suppress_health_check=[HealthCheck.too_slow])
 @given(files=in_range_case())
 def test_values_inside_the_bounds_end_with_0_2_or_3(files):
@@ -154,5 +154,35 @@ def test_values_just_outside_a_bound_are_input_errors(target, above, row):
         rc, err = _run(["check", str(tmp / "case"), "--quiet"])
         assert rc == 2, (c.name, v, err)
         assert f"{file} row {r + 1} column {c.name}" in err, err
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
+SERIES_TARGETS = [("units_by_period.csv", "unit", "Dale_1", c) for c in UNIT_COLS
+                  if c.per_period and c.kind == "float"] + \
+                 [("areas_by_period.csv", "area", "South", c) for c in AREA_COLS
+                  if c.per_period and c.kind == "float"] + \
+                 [("links_by_period.csv", "link", "NS", c) for c in LINK_COLS
+                  if c.per_period and c.kind == "float"]
+
+
+@settings(max_examples=20, deadline=None, derandomize=True, database=None,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(target=st.sampled_from(SERIES_TARGETS), data=st.data())
+def test_time_series_values_inside_the_bounds_end_with_0_2_or_3(target, data):
+    """The same over a two-period horizon: the drawn value overrides one period."""
+    file, idc, ident, c = target
+    v = data.draw(_values(c.lo, c.hi, c.lo_open))
+    files = dict(BASE)
+    files[file] = f"period,{idc},{c.name}\n1,{ident},{v!r}\n2,{ident},\n"
+    for other, oid, oident in (("units_by_period.csv", "unit", "Dale_1"),
+                               ("areas_by_period.csv", "area", "South"),
+                               ("links_by_period.csv", "link", "NS")):
+        files.setdefault(other, f"period,{oid}\n1,{oident}\n2,{oident}\n")
+    tmp = Path(tempfile.mkdtemp())
+    try:
+        _write(tmp / "case", files)
+        _ends_cleanly(*_run(["check", str(tmp / "case"), "--quiet"]))
+        _ends_cleanly(*_run(["solve", str(tmp / "case"), "--quiet"]))
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
