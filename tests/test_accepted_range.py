@@ -110,7 +110,7 @@ def test_base_case_is_feasible(tmp_path):
     assert _run(["solve", str(tmp_path / "case"), "--quiet"])[0] == 0
 
 
-@settings(max_examples=60, deadline=None, derandomize=True, database=None,
+@settings(max_examples=40, deadline=None, derandomize=True, database=None,
           suppress_health_check=[HealthCheck.too_slow])
 @given(files=in_range_case())
 def test_values_inside_the_bounds_end_with_0_2_or_3(files):
@@ -166,7 +166,7 @@ SERIES_TARGETS = [("units_by_period.csv", "unit", "Dale_1", c) for c in UNIT_COL
                   if c.per_period and c.kind == "float"]
 
 
-@settings(max_examples=20, deadline=None, derandomize=True, database=None,
+@settings(max_examples=12, deadline=None, derandomize=True, database=None,
           suppress_health_check=[HealthCheck.too_slow])
 @given(target=st.sampled_from(SERIES_TARGETS), data=st.data())
 def test_time_series_values_inside_the_bounds_end_with_0_2_or_3(target, data):
