@@ -130,7 +130,7 @@ def _write(folder: Path, files: dict) -> None:
             p.write_bytes(content.encode("utf-8", errors="surrogatepass"))
 
 
-@settings(max_examples=500, deadline=None,
+@settings(max_examples=500, deadline=None, derandomize=True, database=None,
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
 @given(files=mutated_case())
 def test_reader_never_crashes(files):
@@ -151,7 +151,7 @@ def test_reader_never_crashes(files):
         shutil.rmtree(tmp, ignore_errors=True)
 
 
-@settings(max_examples=60, deadline=None,
+@settings(max_examples=60, deadline=None, derandomize=True, database=None,
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
 @given(files=mutated_case())
 def test_cli_bad_input_exits_2_and_writes_nothing(files, capsys):

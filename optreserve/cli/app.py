@@ -7,7 +7,13 @@ import json
 import sys
 
 from optreserve import __version__, progress
-from optreserve.cli.common import EXIT_INFEASIBLE, EXIT_INPUT, EXIT_OK, EXIT_OTHER
+from optreserve.cli.common import (
+    EXIT_INFEASIBLE,
+    EXIT_INPUT,
+    EXIT_OK,
+    EXIT_OTHER,
+    STRICT_HELP,
+)
 from optreserve.cli.snapshot import _add_report_parser, cmd_check, cmd_generate, cmd_solve
 from optreserve.cli.studies import _add_retune_parser, _add_simulate_parser, _add_study_parsers
 from optreserve.errors import CaseError, InfeasibleError, OptreserveError
@@ -32,6 +38,7 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("case", metavar="CASE", help="case folder (case.toml, units.csv, ...)")
     c.add_argument("--quiet", action="store_true", help="no warnings")
     c.add_argument("--json", action="store_true", help="print a JSON document (for scripts)")
+    c.add_argument("--strict", action="store_true", help=STRICT_HELP)
     c.set_defaults(func=cmd_check)
 
     s = sub.add_parser("solve", help="optimise droop and headroom",
@@ -53,6 +60,7 @@ def build_parser() -> argparse.ArgumentParser:
                    "participation or droop steps)")
     s.add_argument("--verbose", action="store_true", help="show the HiGHS log")
     s.add_argument("--quiet", action="store_true", help="print nothing on success")
+    s.add_argument("--strict", action="store_true", help=STRICT_HELP)
     s.add_argument("--json", action="store_true", help="print the summary and events as JSON "
                    "instead of tables (for scripts)")
     s.add_argument("--report", action="store_true", help="also write report.html into --out "

@@ -7,6 +7,7 @@ import sys
 from optreserve.progress import use_colour
 
 EXIT_OK, EXIT_OTHER, EXIT_INPUT, EXIT_INFEASIBLE = 0, 1, 2, 3
+STRICT_HELP = "treat every warning about the case as an input error (exit 2)"
 
 
 def _table(headers: list[str], rows: list[list[str]], right: set[int] | None = None) -> str:
@@ -22,7 +23,13 @@ def _table(headers: list[str], rows: list[list[str]], right: set[int] | None = N
     return "\n".join([fmt(headers), fmt(["-" * w for w in widths])] + [fmt(r) for r in rows])
 
 
-def _warn(case, quiet: bool) -> None:
+def _warn(case, quiet: bool, strict: bool = False) -> None:
+    """Print the case's warnings; with --strict they are input errors (exit 2) instead."""
+    if strict and case.warnings:
+        from optreserve.case.problems import strict_problems
+        from optreserve.errors import CaseError
+
+        raise CaseError(strict_problems(case.warnings))
     if not quiet:
         for w in case.warnings:
             print(f"warning: {w}", file=sys.stderr)

@@ -18,7 +18,7 @@ from optreserve.solver.screen import event_capability
 # ------------------------------------------------------------------ check
 def cmd_check(args) -> int:
     case = load_case(args.case)
-    _warn(case, args.quiet)
+    _warn(case, args.quiet, getattr(args, "strict", False))
     if getattr(args, "json", False):
         cap = event_capability(case)
         short = bool((cap["short_mw"] > 0).any())
@@ -81,7 +81,7 @@ def cmd_solve(args) -> int:
               file=sys.stderr)
         return EXIT_INPUT
     case = load_case(args.case)
-    _warn(case, args.quiet)
+    _warn(case, args.quiet, getattr(args, "strict", False))
     try:
         result = solve(case, engine=args.engine, time_limit=args.time_limit,
                        mip_gap=args.mip_gap, relax=args.relax, verbose=args.verbose)

@@ -8,7 +8,15 @@ import time
 from pathlib import Path
 
 from optreserve.case.reader import load_case
-from optreserve.cli.common import EXIT_INPUT, EXIT_OK, EXIT_OTHER, _pct, _table, _warn
+from optreserve.cli.common import (
+    EXIT_INPUT,
+    EXIT_OK,
+    EXIT_OTHER,
+    STRICT_HELP,
+    _pct,
+    _table,
+    _warn,
+)
 from optreserve.cli.snapshot import _write_diagnosis
 from optreserve.errors import InfeasibleError
 from optreserve.output.results import CAUTION
@@ -23,7 +31,7 @@ def cmd_retune(args) -> int:
     if out_dir is not None:
         check_out(out_dir, args.force)
     case = load_case(args.case)
-    _warn(case, args.quiet)
+    _warn(case, args.quiet, getattr(args, "strict", False))
     keep = tuple(u.strip() for u in (args.keep or "").split(",") if u.strip())
     try:
         prop = retune(case, max_changes=args.max_changes, keep=keep,
@@ -103,6 +111,7 @@ def _add_retune_parser(sub) -> None:
     r.add_argument("--mip-gap", type=float, metavar="G", help="relative MIP gap")
     r.add_argument("--quiet", action="store_true", help="print nothing on success")
     r.add_argument("--json", action="store_true", help="print the proposal as JSON")
+    r.add_argument("--strict", action="store_true", help=STRICT_HELP)
     r.set_defaults(func=cmd_retune)
 
 
@@ -116,7 +125,7 @@ def cmd_simulate(args) -> int:
         print("error: --duration must be more than 0.5 s", file=sys.stderr)
         return EXIT_INPUT
     case = load_case(args.case)
-    _warn(case, args.quiet)
+    _warn(case, args.quiet, getattr(args, "strict", False))
     allocation = read_allocation(args.allocation, case)
     sim = simulate(case, allocation, events=None if args.all else args.event,
                    period=args.period, duration_s=args.duration)
@@ -166,6 +175,7 @@ def _add_simulate_parser(sub) -> None:
     r.add_argument("--force", action="store_true", help="write into a non-empty --out folder "
                    "(only optreserve's files change)")
     r.add_argument("--quiet", action="store_true", help="print nothing on success")
+    r.add_argument("--strict", action="store_true", help=STRICT_HELP)
     r.set_defaults(func=cmd_simulate)
 
 

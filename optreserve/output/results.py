@@ -182,6 +182,7 @@ class Result:
             "binding_event_instances": int(ev["binding"].sum()),
             "verification": {k: _num(v) for k, v in self.verification.items()},
             "dead_band_iterations": self.iterations,
+            "warnings": list(case.warnings),  # the case's own (reader) warnings
             "solver_warnings": list(self.solver_warnings),
             "nadir_check": {k: _num(v) if isinstance(v, float) else v
                             for k, v in self.nadir_check.items()},
