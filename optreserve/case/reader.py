@@ -23,6 +23,7 @@ import numpy as np
 import pandas as pd
 
 from optreserve.case.data import Case, DroopSettings, Limits, SolverSettings
+from optreserve.case.products import PRODUCT_SERIES_COLS, check_products
 from optreserve.case.rules import fill_limits, rule_warnings
 from optreserve.errors import CaseError, Problem
 
@@ -97,7 +98,7 @@ UNIT_COLS = [
     Col("reserve_down_max_mw", "float", False, math.nan, check=_nonneg),
     Col("price_up_per_mw_h", "float", False, 0.0, check=_nonneg),
     Col("price_down_per_mw_h", "float", False, 0.0, check=_nonneg),
-    Col("provides", "bool", False, True),
+    Col("provides", "text", False, "true"),  # words: case/products.py
     Col("inertia_s", "float", False, math.nan, check=_nonneg),
     Col("activation_time_s", "float", False, math.nan, check=_positive),
     Col("energy_price_per_mwh", "float", False, math.nan),
@@ -474,6 +475,7 @@ def load_case(path: str | Path) -> Case:
 
     units, areas = tables["units.csv"], tables["areas.csv"]
     links, events = tables["links.csv"], tables["events.csv"]
+    check_products(folder, units, events, series_raw, settings, col)  # case/products.py
 
     if settings is not None and "limits.max_settled_deviation_hz" not in settings and (
         folder / "case.toml"
@@ -589,7 +591,7 @@ SERIES = {"units": ("unit", UNIT_COLS), "areas": ("area", AREA_COLS),
 SERIES_COLS = {
     "units": {"output_mw", "min_output_mw", "reserve_up_max_mw", "reserve_down_max_mw",
               "energy_price_per_mwh",
-              "price_up_per_mw_h", "price_down_per_mw_h", "provides"},
+              "price_up_per_mw_h", "price_down_per_mw_h", "provides", *PRODUCT_SERIES_COLS},
     "areas": {"load_mw", "load_damping_pct_per_hz", "min_own_reserve_mw"},
     "links": {"limit_mw", "flow_mw", "reactance_pu"},
 }

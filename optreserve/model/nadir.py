@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 
 from optreserve.case.data import Case
-from optreserve.model.horizon import ELASTIC_PENALTY, Horizon
+from optreserve.model.horizon import ELASTIC_PENALTY, Horizon, responds_in
 
 # Nadir rows: time points per event (fewer for long horizons to keep the model small) and
 # the governor model shared with the simulator: a first-order lag of time constant
@@ -77,7 +77,7 @@ def _rows_nadir(lp, case, hz: Horizon, r_up, r_dn, elastic, scale=None):
     N, M = hz.N, len(hz.dP)
     coef, need = nadir_terms(case, hz, scale)
     K = coef.shape[1]
-    live = hz.avail[hz.inst_t].copy()  # (M, N)
+    live = responds_in(hz).copy()  # (M, N) who responds in each instance's direction
     for arr in (hz.trip, hz.absent):
         m = np.nonzero(arr >= 0)[0]
         live[m, arr[m]] = False

@@ -1,0 +1,160 @@
+"""Reserve products (contract version 2, shared/design/case-format.md): `provides` =
+true/false/always/up/down. Checked against an independent dense model solved with
+scipy.optimize.milp (tests/refmilp.py) and the general law of the settled point
+(shared/design/references.md: df = -dP / sum beta, recomputed with tests/refcalc.py)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from conftest import build_case, settings, unit, write_case
+from refcalc import settled_deviation
+from refmilp import dense_optimum
+
+import optreserve
+from optreserve.errors import CaseError
+
+F = 0.2
+AREA = [{"area": "Midmarsh", "load_mw": 4000, "load_damping_pct_per_hz": 1.0}]  # D = 40 MW/Hz
+
+
+def _units():
+    return [
+        unit("Upton", "Midmarsh", 400, 300, 2, 8, price_up=1.0, min_output_mw=100,
+             price_down_per_mw_h=0.1, provides="up"),
+        unit("Downby", "Midmarsh", 400, 200, 2, 8, price_up=0.2, min_output_mw=0,
+             price_down_per_mw_h=1.0, provides="down"),
+        unit("Fullham", "Midmarsh", 500, 500, 2, 8, price_up=0.1, min_output_mw=100,
+             price_down_per_mw_h=0.5, provides="true"),
+        unit("Keepon", "Midmarsh", 300, 200, 2, 8, price_up=5.0, min_output_mw=50,
+             price_down_per_mw_h=5.0, provides="always"),
+        unit("Spare", "Midmarsh", 1000, 600, 2, 8, price_up=3.0, min_output_mw=100,
+             price_down_per_mw_h=3.0, provides="yes"),
+    ]
+
+
+EVENTS = [{"event": "step_up", "kind": "load_step", "area": "Midmarsh", "size_mw": 300},
+          {"event": "step_down", "kind": "load_step", "area": "Midmarsh", "size_mw": -280},
+          {"event": "trip_keepon", "kind": "unit_trip", "unit": "Keepon"}]
+# by the contract's rules, read off the table by hand: Upton up only, Downby down only,
+# Fullham (at full output: no up room) down only, Keepon and Spare both ways
+RESP_UP = [True, False, False, True, True]
+RESP_DN = [False, True, True, True, True]
+ALWAYS = [False, False, False, True, False]
+
+
+def _reference(case, steps=None):
+    u = case.units
+    cap, out, mn = (u[c].to_numpy(float) for c in ("capacity_mw", "output_mw", "min_output_mw"))
+    return dense_optimum(
+        cap, u["droop_min_pct"], u["droop_max_pct"], 50.0, F, F, 40.0, cap - out, out - mn,
+        u["price_up_per_mw_h"].to_numpy(float), u["price_down_per_mw_h"].to_numpy(float),
+        RESP_UP, RESP_DN, [(300.0, set()), (-280.0, set()), (200.0, {3})], always=ALWAYS,
+        steps_pct=steps)
+
+
+def test_reader_gives_the_agreed_columns(case_dir):
+    """Contract v2 'Participation and direction' and RULES.md's agreed representation:
+    true -> up & down, always -> up & down + always, up / down -> one way, false -> none."""
+    case = build_case(case_dir(), settings(), _units() + [
+        unit("Idle", "Midmarsh", 100, 50, provides="false")], AREA, EVENTS)
+    u = case.units.set_index("unit")
+    want = {"Upton": (1, 0, 1, 0), "Downby": (1, 0, 0, 1), "Fullham": (1, 0, 1, 1),
+            "Keepon": (1, 1, 1, 1), "Spare": (1, 0, 1, 1), "Idle": (0, 0, 0, 0)}
+    for name, flags in want.items():
+        got = tuple(int(u.loc[name, c]) for c in ("provides", "provides_always", "provides_up",
+                                                  "provides_down"))
+        assert got == flags, name
+    assert all(u[c].dtype == bool for c in ("provides", "provides_always", "provides_up",
+                                             "provides_down"))
+
+
+def test_bad_provides_word_names_file_row_and_column(case_dir):
+    """RULES.md: bad input gives one line naming file, row and column."""
+    units = _units()
+    units[2]["provides"] = "sometimes"
+    with pytest.raises(CaseError) as err:
+        build_case(case_dir(), settings(), units, AREA, EVENTS)
+    msg = str(err.value)
+    assert "units.csv row 4 column provides" in msg and "sometimes" in msg
+
+
+def test_period_override_of_provides(case_dir):
+    """Contract v1 time series: an override column works like the static one; here `up`
+    in one period only (the other keeps the static `true`)."""
+    folder = write_case(case_dir(), settings(), _units(), AREA, EVENTS)
+    (folder / "units_by_period.csv").write_text(
+        "period,unit,provides\n1,Spare,up\n2,Spare,\n")
+    case = optreserve.load_case(folder)
+    pos = list(case.units["unit"]).index("Spare")
+    assert case.unit_matrix("provides_down")[:, pos].tolist() == [False, True]
+    assert case.unit_matrix("provides_up")[:, pos].tolist() == [True, True]
+
+
+@pytest.mark.parametrize("steps", [None, [2.0, 3.0, 4.0, 5.0, 6.0, 8.0]])
+def test_one_direction_and_always_on_reach_the_independent_optimum(case_dir, steps):
+    """scipy.optimize.milp on the independent dense model (tests/refmilp.py) gives the same
+    least cost; the blocked directions hold no headroom, the always-on governor is on though
+    it is the dearest, the unit at full output still gives downward response, and every
+    settled point equals the general law recomputed by hand-written code (refcalc) with the
+    blocked directions' and the tripped unit's gains removed."""
+    extra = {"droop": {"steps_pct": steps}} if steps else {}
+    case = build_case(case_dir(), settings(limits={"full_activation_deviation_hz": F}, **extra),
+                      _units(), AREA, EVENTS)
+    ref = _reference(case, steps)
+    assert ref is not None
+    res = optreserve.solve(case, engine="highspy", mip_gap=1e-9)
+    assert res.objective_per_h == pytest.approx(ref[0], rel=1e-6)
+    al = res.allocation.set_index("unit").loc[list(case.units["unit"])]
+    assert al.loc["Upton", "headroom_down_mw"] == 0.0
+    assert al.loc["Downby", "headroom_up_mw"] == 0.0
+    assert al.loc["Fullham", "headroom_up_mw"] == 0.0
+    assert al.loc["Fullham", "gain_mw_per_hz"] > 0 and al.loc["Fullham", "headroom_down_mw"] > 0
+    assert al.loc["Keepon", "gain_mw_per_hz"] >= 300 / (0.08 * 50) - 1e-6
+    K = al["gain_mw_per_hz"].to_numpy(float)
+    ev = res.events.set_index("event")
+    for name, size, lost in (("step_up", 300, {}), ("step_down", -280, {}),
+                             ("trip_keepon", 200, {3})):
+        mask = np.array(RESP_UP if size > 0 else RESP_DN)
+        mask[list(lost)] = False
+        r = al["headroom_up_mw" if size > 0 else "headroom_down_mw"].to_numpy(float)
+        x = settled_deviation(size, np.where(mask, K, 0.0), np.zeros(5), r, 40.0)
+        assert abs(ev.loc[name, "settled_deviation_hz"]) == pytest.approx(x, abs=1e-7)
+
+
+def test_always_on_with_fixed_droop_is_kept_on_when_not_needed(case_dir):
+    """Contract v2: an always-on governor is not a decision; a band with min = max fixes
+    its droop. A small event the cheap unit alone covers still finds the dear always-on unit
+    on at exactly its droop: gain 300 / (0.04 * 50) = 150 MW/Hz, headroom 150 x 0.2 = 30 MW
+    (hand arithmetic)."""
+    units = [unit("Cheap", "Midmarsh", 200, 100, 2, 8, price_up=1.0),
+             unit("Keepon", "Midmarsh", 300, 200, 4, 4, price_up=5.0, provides="always")]
+    case = build_case(case_dir(), settings(), units, AREA,
+                      [{"event": "s", "kind": "load_step", "area": "Midmarsh", "size_mw": 50}])
+    res = optreserve.solve(case, engine="highspy", mip_gap=1e-9)
+    al = res.allocation.set_index("unit")
+    assert al.loc["Keepon", "gain_mw_per_hz"] == pytest.approx(150.0)
+    assert al.loc["Keepon", "headroom_up_mw"] == pytest.approx(30.0)
+    # the cheap unit covers the rest: 50 - 30 - 0.2 x 40 = 12 MW (above its band minimum
+    # 200 / (0.08 x 50) x 0.2 = 10 MW)
+    assert al.loc["Cheap", "headroom_up_mw"] == pytest.approx(12.0, abs=1e-6)
+
+
+def test_unit_at_full_output_gives_down_response_with_both_directions(case_dir):
+    """The issue's case: with under- and over-frequency events, a unit at full output used
+    to be left out entirely. Here only it can cover the over-frequency event (the other
+    unit is up-only), so the case is feasible only if it gets downward credit: gain
+    (100 - 0.2 x 40) / 0.2 = 460 MW/Hz, down headroom 92 MW (hand arithmetic)."""
+    units = [unit("Upper", "Midmarsh", 1000, 500, 2, 8, price_up=1.0, provides="up"),
+             unit("Fullon", "Midmarsh", 600, 600, 2, 8, price_up=1.0, min_output_mw=200,
+                  price_down_per_mw_h=1.0)]
+    case = build_case(case_dir(), settings(), units, AREA,
+                      [{"event": "u", "kind": "load_step", "area": "Midmarsh", "size_mw": 100},
+                       {"event": "d", "kind": "load_step", "area": "Midmarsh", "size_mw": -100}])
+    res = optreserve.solve(case, engine="highspy", mip_gap=1e-9)
+    al = res.allocation.set_index("unit")
+    assert al.loc["Fullon", "headroom_down_mw"] == pytest.approx(92.0, abs=1e-6)
+    assert al.loc["Fullon", "headroom_up_mw"] == 0.0
+    assert al.loc["Upper", "headroom_down_mw"] == 0.0
+    ev = res.events.set_index("event")
+    assert ev.loc["d", "settled_deviation_hz"] == pytest.approx(0.2, abs=1e-7)
