@@ -158,3 +158,142 @@ def test_unit_at_full_output_gives_down_response_with_both_directions(case_dir):
     assert al.loc["Upper", "headroom_down_mw"] == 0.0
     ev = res.events.set_index("event")
     assert ev.loc["d", "settled_deviation_hz"] == pytest.approx(0.2, abs=1e-7)
+
+
+# ------------------------------------------------------------------ common-mode trips
+def _cm_case(case_dir, nadir=False, **over):
+    """Four governors fixed on at 4 % droop on 1000 MW (gain 1000 / (0.04 x 50) = 500 MW/Hz
+    each); Ash and Birch share a busbar in Westfold, Cedar is in Westfold too, Dun in
+    Eastmere; 2000 MW of load at 1 %/Hz in each area (D = 20 MW/Hz each)."""
+    lim = {"full_activation_deviation_hz": 0.5}
+    if nadir:
+        lim["max_nadir_deviation_hz"] = 3.0
+    units = [unit(n, a, 1000, o, 4, 4, price_up=p, provides="always", inertia_s=5.0,
+                  activation_time_s=10.0)
+             for n, a, o, p in (("Ash", "Westfold", 200, 1), ("Birch", "Westfold", 200, 1),
+                                ("Cedar", "Westfold", 600, 2), ("Dun", "Eastmere", 600, 3))]
+    areas = [{"area": a, "load_mw": 2000, "load_damping_pct_per_hz": 1.0}
+             for a in ("Westfold", "Eastmere")]
+    links = [{"link": "W-E", "from_area": "Westfold", "to_area": "Eastmere",
+              "reactance_pu": 0.02, "limit_mw": 1000, "flow_mw": 0}]
+    events = [{"event": "busbar", "kind": "unit_trip", "unit": "Ash+Birch", **over}]
+    return build_case(case_dir(), settings(max_dev=0.5, limits=lim), units, areas, events,
+                      links)
+
+
+def test_common_mode_size_defaults_to_the_sum_of_outputs(case_dir):
+    """Contract v2 'Common-mode events': size_mw defaults to the sum of the outputs."""
+    case = _cm_case(case_dir)
+    ev = case.events.iloc[0]
+    assert ev["size_mw"] == 400.0 and ev["area"] == "Westfold"
+
+
+@pytest.mark.parametrize("nadir", [False, True])
+def test_common_mode_settled_point_and_flow_by_hand(case_dir, nadir):
+    """General law (shared/design/references.md): df = -dP / sum beta with the lost units'
+    gains removed: dP = 200 + 200 = 400 MW, beta = 500 (Cedar) + 500 (Dun) + 20 + 20 =
+    1040 MW/Hz -> df = -0.384615 Hz (with only Ash removed it would be -0.2597 Hz, with
+    neither -0.196 Hz). Tie flow change dPtie,W = -beta_E dP / sum beta = -520 x 400 / 1040
+    = -200 MW (Eastmere sends 200 MW west)."""
+    case = _cm_case(case_dir, nadir=nadir)
+    res = optreserve.solve(case, engine="highspy", mip_gap=1e-9)
+    ev = res.events.set_index("event")
+    assert ev.loc["busbar", "settled_deviation_hz"] == pytest.approx(-400 / 1040, abs=1e-9)
+    assert ev.loc["busbar", "size_mw"] == 400.0
+    fl = res.links.set_index("link")
+    assert fl.loc["W-E", "flow_after_mw"] == pytest.approx(-200.0, abs=1e-6)
+
+
+def test_common_mode_loses_the_inertia_of_all_its_units(case_dir):
+    """Nadir rows use the stored energy left after the event: 4 x 5 s x 1000 MW = 20 000 MW s
+    online, minus Ash's and Birch's 5000 MW s each = 10 000 MW s (hand arithmetic)."""
+    from optreserve.model.horizon import prepare
+
+    hz = prepare(_cm_case(case_dir, nadir=True))
+    assert hz.H_sys.tolist() == [10000.0]
+    assert sorted(hz.lost[0].nonzero()[1].tolist()) == [0, 1]
+
+
+def test_common_mode_trip_size_follows_outputs_per_period(case_dir):
+    """Contract v1 time series + v2 common-mode: a trip without size_mw follows the lost
+    units' outputs in each period: 200 + 200 = 400, then 350 + 200 = 550 MW."""
+    case = _cm_case(case_dir)
+    (case.path / "units_by_period.csv").write_text("period,unit,output_mw\n1,Ash,200\n"
+                                                   "2,Ash,350\n")
+    case = optreserve.load_case(case.path)
+    assert case.instances()["size_mw"].tolist() == [400.0, 550.0]
+    assert [s.events["size_mw"].iloc[0] for s in case.snapshots()] == [400.0, 550.0]
+
+
+@pytest.mark.parametrize("bad,msg", [("Ash+Nobody", "unknown unit 'Nobody'"),
+                                     ("Ash+Ash", "appears twice"),
+                                     ("Ash+Dun", "different areas"),
+                                     ("Ash+", "empty unit name")])
+def test_bad_common_mode_trip_names_file_row_and_column(case_dir, bad, msg):
+    """RULES.md: bad input gives one line naming file, row and column."""
+    with pytest.raises(CaseError) as err:
+        _cm_case(case_dir, unit=bad)
+    text = str(err.value)
+    assert "events.csv row 2 column unit" in text and msg in text
+    assert len(err.value.problems) == 1
+
+
+@pytest.mark.parametrize("seed", [11, 12, 13])
+def test_common_mode_optimum_equals_independent_milp(case_dir, seed):
+    """scipy.optimize.milp on the independent dense model (tests/refmilp.py) with the
+    common-mode trip losing both units' response: same least cost (random small cases,
+    seeded, droop steps)."""
+    rng = np.random.default_rng(seed)
+    n = 6
+    cap = np.round(np.r_[rng.uniform(60, 120, 2), rng.uniform(400, 900, n - 2)])
+    out = np.round(cap * rng.uniform(0.4, 0.9, n))
+    pu = np.round(rng.uniform(0.5, 5, n), 2)
+    units = [unit(f"U{k}", "Midmarsh", float(cap[k]), float(out[k]), 2, 10, price_up=float(pu[k]))
+             for k in range(n)]
+    steps = [2.0, 3.0, 4.0, 5.0, 6.0, 8.0, 10.0]
+    events = [{"event": "cm", "kind": "unit_trip", "unit": "U0+U1"},
+              {"event": "s", "kind": "load_step", "area": "Midmarsh", "size_mw": 150}]
+    case = build_case(case_dir(), settings(limits={"full_activation_deviation_hz": F},
+                                           droop={"steps_pct": steps}), units, AREA, events)
+    res = optreserve.solve(case, engine="highspy", mip_gap=1e-9)
+    ref = dense_optimum(cap, [2] * n, [10] * n, 50.0, F, F, 40.0, cap - out, out, pu,
+                        np.zeros(n), [True] * n, [True] * n,
+                        [(float(out[0] + out[1]), {0, 1}), (150.0, set())], steps_pct=steps)
+    assert ref is not None
+    assert res.objective_per_h == pytest.approx(ref[0], rel=1e-6)
+
+
+def test_one_direction_flows_match_an_independent_dc_load_flow(case_dir):
+    """Aggregates per direction in the flow rows: post-event tie flows of a two-area case
+    with one-direction providers equal the tests' own DC load flow (refcalc, numpy lstsq on
+    the Laplacian) of the settled responses with the blocked directions removed; the tie
+    limit binds, so the rows matter."""
+    from refcalc import dc_flows
+
+    units = [unit("Wup", "Westfold", 800, 400, 2, 8, price_up=1.0, provides="up",
+                  price_down_per_mw_h=0.1),
+             unit("Wdn", "Westfold", 800, 400, 2, 8, price_up=0.1, provides="down",
+                  price_down_per_mw_h=1.0),
+             unit("Eboth", "Eastmere", 900, 500, 2, 8, price_up=4.0, price_down_per_mw_h=4.0)]
+    areas = [{"area": a, "load_mw": 2000, "load_damping_pct_per_hz": 1.0}
+             for a in ("Westfold", "Eastmere")]
+    links = [{"link": "W-E", "from_area": "Westfold", "to_area": "Eastmere",
+              "reactance_pu": 0.02, "limit_mw": 90, "flow_mw": 10}]
+    events = [{"event": "e_up", "kind": "load_step", "area": "Eastmere", "size_mw": 200},
+              {"event": "e_dn", "kind": "load_step", "area": "Eastmere", "size_mw": -200}]
+    case = build_case(case_dir(), settings(), units, areas, events, links)
+    res = optreserve.solve(case, engine="highspy", mip_gap=1e-9)
+    al = res.allocation.set_index("unit").loc[["Wup", "Wdn", "Eboth"]]
+    K = al["gain_mw_per_hz"].to_numpy(float)
+    for name, size, mask in (("e_up", 200, [1, 0, 1]), ("e_dn", -200, [0, 1, 1])):
+        r = al["headroom_up_mw" if size > 0 else "headroom_down_mw"].to_numpy(float)
+        Km = np.where(np.array(mask, bool), K, 0.0)
+        x = settled_deviation(size, Km, np.zeros(3), r, 40.0)
+        resp = np.minimum(Km * x, r)
+        inj = np.array([resp[0] + resp[1] + 20 * x, resp[2] + 20 * x - abs(size)])
+        flow = 10 + dc_flows(["Westfold", "Eastmere"], [("Westfold", "Eastmere", 0.02)],
+                             np.sign(size) * inj)[0]
+        got = res.links.set_index("event").loc[name, "flow_after_mw"]
+        assert got == pytest.approx(flow, abs=1e-6)
+        assert abs(got) <= 90 + 1e-6
+    assert max(abs(res.links["flow_after_mw"])) == pytest.approx(90, abs=1e-4)

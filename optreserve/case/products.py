@@ -1,5 +1,5 @@
 """Reserve products in the case tables (contract version 2): participation and direction
-(`provides` = true/false/always/up/down).
+(`provides` = true/false/always/up/down) and common-mode trips (`unit` = `G1+G2`).
 
 The reader calls check_products once its tables are typed; everything here works on whole
 columns and reports each bad cell by file, row and column. After it the units table (and any
@@ -16,6 +16,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+import scipy.sparse as sp
 
 TRUE_WORDS = {"true", "1", "yes", "y", "t"}
 FALSE_WORDS = {"false", "0", "no", "n", "f"}
@@ -86,3 +87,59 @@ def _col(units: pd.DataFrame, name: str, default: np.ndarray) -> np.ndarray:
 
 # derived override columns the reader keeps in units_by_period.csv (the user writes `provides`)
 PRODUCT_SERIES_COLS = ("provides_always", "provides_up", "provides_down")
+
+
+# ------------------------------------------------------------------ common-mode trips
+TRIP_JOIN = "+"
+
+
+def trip_names(unit_field: str) -> list[str]:
+    """Units named by a unit_trip's `unit` cell: one id, or several joined by '+'."""
+    return [p.strip() for p in str(unit_field).split(TRIP_JOIN)]
+
+
+def trip_lookup(ev: pd.DataFrame, units: pd.DataFrame, file: str, col) -> tuple[dict, dict]:
+    """(area, output) of every unit and of every valid common-mode trip (`G1+G2`) of the
+    events table, for the reader's event checks: a common-mode trip lies in its units' one
+    area and its size defaults to the sum of their outputs. A bad name (unknown or repeated
+    unit, units in different areas) is reported here, on the event's row."""
+    unit_area = dict(zip(units["unit"], units["area"]))
+    unit_out = dict(zip(units["unit"], units["output_mw"]))
+    kind = ev["kind"].to_numpy(object)
+    names = ev["unit"].to_numpy(object)
+    lines = ev["_line"].to_numpy()
+    for r in np.nonzero((kind == "unit_trip") & pd.Series(names).str.contains(
+            TRIP_JOIN, regex=False).to_numpy())[0]:
+        parts = trip_names(names[r])
+        bad = [p for p in parts if p not in unit_area]
+        msg = None
+        if any(p == "" for p in parts):
+            msg = f"empty unit name in common-mode trip '{names[r]}'"
+        elif bad:
+            msg = f"unknown unit '{bad[0]}' in common-mode trip '{names[r]}' (not in units.csv)"
+        elif len(set(parts)) < len(parts):
+            msg = f"a unit appears twice in common-mode trip '{names[r]}'"
+        elif len({unit_area[p] for p in parts}) > 1:
+            msg = (f"the units of common-mode trip '{names[r]}' lie in different areas "
+                   f"({', '.join(sorted({unit_area[p] for p in parts}))}): one area is required")
+        if msg is not None:
+            col.error(file, msg, int(lines[r]), "unit")
+            unit_area[names[r]], unit_out[names[r]] = ev["area"].iloc[r], 1.0  # reported
+            continue
+        unit_area[names[r]] = unit_area[parts[0]]
+        unit_out[names[r]] = float(sum(unit_out[p] for p in parts))
+    return unit_area, unit_out
+
+
+def trip_members(units: pd.DataFrame, events: pd.DataFrame) -> sp.csr_matrix:
+    """(E, N) sparse 0/1 matrix: the units each event loses (all units of a common-mode
+    trip; none for a load step)."""
+    upos = {u: k for k, u in enumerate(units["unit"])}
+    rows, cols = [], []
+    for e, (kind, name) in enumerate(zip(events["kind"], events["unit"])):
+        if kind == "unit_trip":
+            for p in trip_names(name):
+                if p in upos:
+                    rows.append(e)
+                    cols.append(upos[p])
+    return sp.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(len(events), len(units)))

@@ -23,7 +23,7 @@ import numpy as np
 import pandas as pd
 
 from optreserve.case.data import Case, DroopSettings, Limits, SolverSettings
-from optreserve.case.products import PRODUCT_SERIES_COLS, check_products
+from optreserve.case.products import PRODUCT_SERIES_COLS, check_products, trip_lookup
 from optreserve.case.rules import fill_limits, rule_warnings
 from optreserve.errors import CaseError, Problem
 
@@ -775,8 +775,7 @@ def _check_links(lk: pd.DataFrame, file: str, area_ids: set[str] | None, col: _C
 
 def _check_events(ev: pd.DataFrame, file: str, units: pd.DataFrame, area_ids: set[str],
                   col: _Collector):
-    unit_area = dict(zip(units["unit"], units["area"]))
-    unit_out = dict(zip(units["unit"], units["output_mw"]))
+    unit_area, unit_out = trip_lookup(ev, units, file, col)  # case/products.py (G1+G2)
     areas_out, sizes = [], []
     from_output = np.zeros(len(ev), dtype=bool)
     for _, r in ev.iterrows():

@@ -7,9 +7,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.sparse as sp
 
 from optreserve.case.data import Case
-from optreserve.case.products import unit_flags
+from optreserve.case.products import trip_members, unit_flags
 from optreserve.network.ptdf import ptdf
 
 
@@ -28,15 +29,13 @@ class Events:
     def of(cls, case: Case) -> "Events":
         ev = case.events
         apos = {a: k for k, a in enumerate(case.areas["area"])}
-        upos = {u: k for k, u in enumerate(case.units["unit"])}
         size = ev["size_mw"].to_numpy(float)
         return cls(
             names=[str(e) for e in ev["event"]],
             dP=np.abs(size),
             sigma=np.where(size < 0, -1.0, 1.0),
             area=np.array([apos[a] for a in ev["area"]], dtype=np.int64),
-            trip=np.array([upos.get(u, -1) if k == "unit_trip" else -1
-                           for k, u in zip(ev["kind"], ev["unit"])], dtype=np.int64),
+            trip=first_lost(trip_members(case.units, ev)),
         )
 
 
@@ -202,6 +201,9 @@ class Horizon:
     resp_up: np.ndarray | None = None  # (T, N)
     resp_dn: np.ndarray | None = None  # (T, N)
     always_b: np.ndarray | None = None  # (B, N)
+    # (M, N) sparse 0/1: the units each instance loses (several for a common-mode trip);
+    # `trip` keeps the first of them. None: `trip` alone.
+    lost: sp.csr_matrix | None = None
 
     @property
     def N(self) -> int:
@@ -213,7 +215,6 @@ def prepare(case: Case) -> Horizon:
     T = case.n_periods
     N = len(case.units)
     apos = {a: k for k, a in enumerate(case.areas["area"])}
-    upos = {u: k for k, u in enumerate(case.units["unit"])}
     ev = case.events
     inst = case.instances()
     e = inst["event_index"].to_numpy()
@@ -222,8 +223,8 @@ def prepare(case: Case) -> Horizon:
     dP = np.abs(size)
     sigma = np.where(size < 0, -1.0, 1.0)
     ev_area = np.array([apos[a] for a in ev["area"]], dtype=np.int64)
-    ev_trip = np.array([upos.get(u, -1) if k == "unit_trip" else -1
-                        for k, u in zip(ev["kind"], ev["unit"])], dtype=np.int64)
+    members = trip_members(case.units, ev)  # (E, N): all units of a common-mode trip
+    ev_trip = first_lost(members)
     need_up = np.bincount(inst_t, weights=(sigma > 0) & (dP > 0), minlength=T) > 0
     need_dn = np.bincount(inst_t, weights=(sigma < 0) & (dP > 0), minlength=T) > 0
     um = case.unit_matrix
@@ -268,7 +269,7 @@ def prepare(case: Case) -> Horizon:
         K_hi_t=K_hi_t, avail=avail, R_up=R_up, R_dn=R_dn,
         price_up=um("price_up_per_mw_h").astype(float),
         price_dn=um("price_down_per_mw_h").astype(float),
-        H_sys=system_inertia(case, inst_t, ev_trip[e]),
+        H_sys=system_inertia(case, inst_t, members[e]),
         T_act=case.units["activation_time_s"].to_numpy(float),
         need_up=need_up, need_dn=need_dn, D_a=damping,
         own=case.area_matrix("min_own_reserve_mw").astype(float),
@@ -283,6 +284,7 @@ def prepare(case: Case) -> Horizon:
         dP_var=np.where(_from_output(case, e) & (ev_trip[e] >= 0) & disp[np.maximum(
             ev_trip[e], 0)], ev_trip[e], -1).astype(np.int64),
         resp_up=resp_up, resp_dn=resp_dn, always_b=always_b & capable_b,
+        lost=members[e].tocsr(),
     )
 
 
@@ -293,18 +295,53 @@ def _from_output(case: Case, e: np.ndarray) -> np.ndarray:
     return ev["size_from_output"].to_numpy(bool)[e]
 
 
-def system_inertia(case: Case, inst_t: np.ndarray, trip: np.ndarray) -> np.ndarray:
+def system_inertia(case: Case, inst_t: np.ndarray, trip) -> np.ndarray:
     """Stored kinetic energy H_i * capacity_i [MW s] of the units online in each instance's
-    period, minus the tripped unit's. A unit counts as online when it runs (output not zero)
-    or may provide reserve; a missing inertia_s counts as zero."""
+    period, minus the tripped units' (trip: (M,) unit or -1, or an (M, N) sparse matrix of
+    lost units). A unit counts as online when it runs (output not zero) or may provide
+    reserve; a missing inertia_s counts as zero."""
     cap = case.units["capacity_mw"].to_numpy(float)
     H = np.nan_to_num(case.units["inertia_s"].to_numpy(float)) * cap  # (N,)
     online = (case.unit_matrix("output_mw").astype(float) != 0) | case.unit_matrix(
         "provides").astype(bool)
     per_t = (online * H[None, :]).sum(axis=1)  # (T,)
-    lost = np.where(trip >= 0, H[np.maximum(trip, 0)] * online[inst_t, np.maximum(trip, 0)],
-                    0.0)
+    if sp.issparse(trip):
+        m, j = trip.nonzero()
+        lost = np.bincount(m, weights=H[j] * online[inst_t[m], j], minlength=len(inst_t))
+    else:
+        lost = np.where(trip >= 0, H[np.maximum(trip, 0)] * online[inst_t, np.maximum(trip, 0)],
+                        0.0)
     return per_t[inst_t] - lost
+
+
+def first_lost(members: sp.csr_matrix) -> np.ndarray:
+    """(E,) the first unit each event loses, -1 for none."""
+    m = members.tocsr()
+    if m.nnz == 0:
+        return np.full(m.shape[0], -1, dtype=np.int64)
+    has = np.diff(m.indptr) > 0
+    return np.where(has, m.indices[np.minimum(m.indptr[:-1], m.nnz - 1)], -1).astype(np.int64)
+
+
+def lost_pairs(hz: Horizon, inst=None) -> tuple[np.ndarray, np.ndarray]:
+    """(instance, unit) pairs of every unit lost in the instances given (all units of a
+    common-mode trip), instance-ordered."""
+    inst = np.arange(len(hz.dP)) if inst is None else np.asarray(inst)
+    if hz.lost is None:
+        j = hz.trip[inst]
+        return inst[j >= 0], j[j >= 0]
+    m, j = hz.lost[inst].nonzero()
+    order = np.lexsort((j, m))
+    return inst[m[order]], j[order].astype(np.int64)
+
+
+def out_pairs(hz: Horizon, inst=None) -> tuple[np.ndarray, np.ndarray]:
+    """(instance, unit) pairs of providers that give no response in the instances given:
+    every lost unit, then any absent provider."""
+    inst = np.arange(len(hz.dP)) if inst is None else np.asarray(inst)
+    m1, j1 = lost_pairs(hz, inst)
+    j2 = hz.absent[inst]
+    return np.r_[m1, inst[j2 >= 0]], np.r_[j1, j2[j2 >= 0]].astype(np.int64)
 
 
 # Penalty of the elastic (diagnosis) slacks: large against any headroom price so that a
@@ -345,11 +382,6 @@ def _removed(hz: Horizon, inst):
     period and direction but not in the instance: the tripped unit and any absent provider."""
     up, dn = responds(hz)
     both = np.concatenate([up, dn])
-    out_m, out_j = [], []
-    for arr in (hz.trip, hz.absent):
-        j = arr[inst]
-        ok = j >= 0
-        ok[ok] = both[direction_key(hz, inst[ok]), j[ok]]
-        out_m.append(inst[ok])
-        out_j.append(j[ok])
-    return np.concatenate(out_m), np.concatenate(out_j)
+    m, j = out_pairs(hz, np.asarray(inst))
+    ok = both[direction_key(hz, m), j]
+    return m[ok], j[ok]

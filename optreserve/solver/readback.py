@@ -8,8 +8,8 @@ import numpy as np
 from optreserve.case.data import Case
 from optreserve.errors import VerificationError
 from optreserve.model.build import ModelInfo
-from optreserve.model.horizon import (Horizon, direction_key, effective_factor, responds,
-                                      responds_in)
+from optreserve.model.horizon import (Horizon, direction_key, effective_factor, lost_pairs,
+                                      out_pairs, responds, responds_in)
 from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
 from optreserve.solver.backends import Outcome
@@ -76,7 +76,7 @@ def evaluate_allocation(case: Case, hz: Horizon, gain, r_up, r_dn) -> BatchPoint
         hz.D_a, hz.F0, [apos[a] for a in case.links["from_area"]],
         [apos[a] for a in case.links["to_area"]],
         case.link_matrix("reactance_pu").astype(float), absent=hz.absent,
-        respond=responds(hz))
+        respond=responds(hz), lost=lost_pairs(hz))
 
 
 def model_beta(lp: LinearProgram, info: ModelInfo, x: np.ndarray) -> np.ndarray:
@@ -90,14 +90,12 @@ def model_beta(lp: LinearProgram, info: ModelInfo, x: np.ndarray) -> np.ndarray:
     c = effective_factor(info.classes, info.x_hat)  # (M, K)
     beta = (G[info.group_of_t[direction_key(hz)]] * c[:, None, :]).sum(axis=2) + hz.D_a[t]
     resp = responds_in(hz)  # (M, N)
-    for arr in (hz.trip, hz.absent):  # providers that respond in the period but not here
-        m = np.nonzero(arr >= 0)[0]
-        j = arr[m]
-        m, j = m[resp[m, j]], j[resp[m, j]]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            cj = np.clip(1.0 - hz.d_hz[j] / np.where(info.x_hat[m] > 0, info.x_hat[m], np.inf),
-                         0.0, 1.0)
-        np.subtract.at(beta, (m, hz.area[j]), cj * K[hz.block[t[m]] * hz.N + j])
+    m, j = out_pairs(hz)  # providers that respond in the period but not here
+    m, j = m[resp[m, j]], j[resp[m, j]]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cj = np.clip(1.0 - hz.d_hz[j] / np.where(info.x_hat[m] > 0, info.x_hat[m], np.inf),
+                     0.0, 1.0)
+    np.subtract.at(beta, (m, hz.area[j]), cj * K[hz.block[t[m]] * hz.N + j])
     return beta
 
 

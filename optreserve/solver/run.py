@@ -4,6 +4,7 @@ independently, read prices, and return a Result of pandas tables."""
 from __future__ import annotations
 
 import time
+from dataclasses import replace
 from typing import Callable
 
 import numpy as np
@@ -12,7 +13,7 @@ from optreserve import progress
 from optreserve.case.data import Case
 from optreserve.errors import SolverError
 from optreserve.model.build import ModelInfo, build_model
-from optreserve.model.horizon import Horizon, prepare
+from optreserve.model.horizon import Horizon, lost_pairs, prepare
 from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
 from optreserve.solver.backends import Outcome, solve_program
@@ -169,14 +170,24 @@ def _nadir_round(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
     gain, r_up, r_dn = period_values(lp, info, out.x)
     worst = np.zeros(len(hz.dP))
     systems = {}
+    lm, lj = lost_pairs(hz)
     for m in live:
         t = int(hz.inst_t[m])
         g = gain[t].copy()
         if hz.absent[m] >= 0:
             g[hz.absent[m]] = 0.0
-        key = (t, int(hz.absent[m]))
+        # a common-mode trip: the simulator takes one tripped unit; the others lose their
+        # response and stored energy here
+        extra = lj[(lm == m) & (lj != hz.trip[m])]
+        g[extra] = 0.0
+        key = (t, int(hz.absent[m]), tuple(extra))
         if key not in systems:
-            systems[key] = build_system(case, g, r_up[t], r_dn[t], t=t)
+            sysm = build_system(case, g, r_up[t], r_dn[t], t=t)
+            if len(extra):
+                H = sysm.stored_energy_mw_s.copy()
+                H[extra] = 0.0
+                sysm = replace(sysm, stored_energy_mw_s=H)
+            systems[key] = sysm
         tr = simulate_event(systems[key], float(hz.sigma[m] * hz.dP[m]), int(hz.inst_area[m]),
                             trip=int(hz.trip[m]), duration_s=30.0)
         worst[m] = abs(tr.nadir_hz - case.nominal_frequency_hz)
