@@ -297,3 +297,103 @@ def test_one_direction_flows_match_an_independent_dc_load_flow(case_dir):
         assert got == pytest.approx(flow, abs=1e-6)
         assert abs(got) <= 90 + 1e-6
     assert max(abs(res.links["flow_after_mw"])) == pytest.approx(90, abs=1e-4)
+
+
+# ------------------------------------------------------------------ energy-limited providers
+def _battery_case(case_dir, limits=None, **battery):
+    """A cheap battery (100 MW, idle, may charge at 100 MW) beside a dear unit; events both
+    ways big enough that the battery is used to its limit."""
+    units = [unit("Kirn", "Midmarsh", 100, 0, 1, 8, price_up=0.5, min_output_mw=-100,
+                  price_down_per_mw_h=0.5, **battery),
+             unit("Dear", "Midmarsh", 1000, 500, 2, 8, price_up=4.0, price_down_per_mw_h=4.0)]
+    events = [{"event": "u", "kind": "load_step", "area": "Midmarsh", "size_mw": 150},
+              {"event": "d", "kind": "load_step", "area": "Midmarsh", "size_mw": -150}]
+    return build_case(case_dir(), settings(limits=limits or {}), units, AREA, events)
+
+
+def test_energy_caps_headroom_by_hand(case_dir):
+    """Contract v2 'Energy-limited providers', hand arithmetic: 5 MWh over 15 min sustains
+    5 x 60 / 15 = 20 MW up. Without the energy column the battery (band 1-8 %: up to
+    100 / (0.01 x 50) = 200 MW/Hz, 40 MW at 0.2 Hz) holds 40 MW; with it 20 MW (gain 100
+    MW/Hz). Adding 2.5 MWh down (10 MW) caps the one droop both ways: gain 10 / 0.2 =
+    50 MW/Hz (droop 100 / (50 x 50) = 4 %), 10 MW each way."""
+    free = optreserve.solve(_battery_case(case_dir), engine="highspy", mip_gap=1e-9)
+    assert free.allocation.set_index("unit").loc["Kirn", "headroom_up_mw"] == pytest.approx(40)
+    up = optreserve.solve(_battery_case(case_dir, {"min_sustain_minutes": 15}, energy_up_mwh=5),
+                          engine="highspy", mip_gap=1e-9)
+    al = up.allocation.set_index("unit")
+    assert al.loc["Kirn", "headroom_up_mw"] == pytest.approx(20.0, abs=1e-7)
+    assert al.loc["Kirn", "gain_mw_per_hz"] == pytest.approx(100.0, abs=1e-6)
+    case = _battery_case(case_dir, {"min_sustain_minutes": 15}, energy_up_mwh=5,
+                         energy_down_mwh=2.5)
+    res = optreserve.solve(case, engine="highspy", mip_gap=1e-9)
+    al = res.allocation.set_index("unit")
+    assert al.loc["Kirn", "headroom_up_mw"] == pytest.approx(10.0, abs=1e-7)
+    assert al.loc["Kirn", "headroom_down_mw"] == pytest.approx(10.0, abs=1e-7)
+    assert al.loc["Kirn", "droop_pct"] == pytest.approx(4.0, abs=1e-6)
+
+
+def test_energy_cap_per_period(case_dir):
+    """Contract v1 time series, droop held per period: an energy override for period 2
+    (2 MWh: 2 x 60 / 15 = 8 MW) caps that period only; period 1 keeps the static 5 MWh
+    (20 MW). Hand arithmetic."""
+    folder = write_case(case_dir(), settings(limits={"min_sustain_minutes": 15},
+                                             droop={"hold_periods": 1}),
+                        [unit("Kirn", "Midmarsh", 100, 0, 1, 8, price_up=0.5,
+                              min_output_mw=-100, energy_up_mwh=5),
+                         unit("Dear", "Midmarsh", 1000, 500, 2, 8, price_up=4.0)],
+                        AREA, [{"event": "u", "kind": "load_step", "area": "Midmarsh",
+                                "size_mw": 150}])
+    (folder / "units_by_period.csv").write_text("period,unit,energy_up_mwh\n1,Kirn,\n2,Kirn,2\n")
+    res = optreserve.solve(optreserve.load_case(folder), engine="highspy", mip_gap=1e-9)
+    al = res.allocation.set_index(["unit", "period"])
+    assert al.loc[("Kirn", "1"), "headroom_up_mw"] == pytest.approx(20.0, abs=1e-7)
+    assert al.loc[("Kirn", "2"), "headroom_up_mw"] == pytest.approx(8.0, abs=1e-7)
+
+
+def test_energy_column_needs_min_sustain(case_dir):
+    """Contract v2: min_sustain_minutes is required when a unit gives an energy column."""
+    with pytest.raises(CaseError) as err:
+        _battery_case(case_dir, energy_up_mwh=5)
+    assert "units.csv row 2 column energy_up_mwh" in str(err.value)
+    assert "min_sustain_minutes" in str(err.value)
+
+
+def test_rule_set_fills_the_sustain_time(case_dir):
+    """EU 2017/1485 Art. 156(9)-(11) (memory, shared/design/references.md): CE 15 min; an
+    explicit value wins; a set that records none (GB) fills nothing."""
+    ce = _battery_case(case_dir, {"rules": "continental-europe"}, energy_up_mwh=5)
+    assert ce.limits.min_sustain_minutes == 15.0
+    own = _battery_case(case_dir, {"rules": "continental-europe", "min_sustain_minutes": 30},
+                        energy_up_mwh=5)
+    assert own.limits.min_sustain_minutes == 30.0
+    with pytest.raises(CaseError):
+        _battery_case(case_dir, {"rules": "great-britain"}, energy_up_mwh=5)
+
+
+@pytest.mark.parametrize("seed", [21, 22])
+def test_energy_limited_optimum_equals_independent_milp(case_dir, seed):
+    """scipy.optimize.milp on the independent dense model with each provider's room cut to
+    energy x 60 / min_sustain (random small cases, seeded): same least cost."""
+    rng = np.random.default_rng(seed)
+    n = 5
+    cap = np.round(rng.uniform(100, 600, n))
+    out = np.round(cap * rng.uniform(0.3, 0.8, n))
+    pu, pd_ = np.round(rng.uniform(0.5, 5, n), 2), np.round(rng.uniform(0.5, 5, n), 2)
+    e_up, e_dn = np.round(rng.uniform(2, 30, n), 1), np.round(rng.uniform(2, 30, n), 1)
+    units = [unit(f"U{k}", "Midmarsh", float(cap[k]), float(out[k]), 2, 10,
+                  price_up=float(pu[k]), price_down_per_mw_h=float(pd_[k]),
+                  energy_up_mwh=float(e_up[k]), energy_down_mwh=float(e_dn[k]))
+             for k in range(n)]
+    events = [{"event": "u", "kind": "load_step", "area": "Midmarsh", "size_mw": 120},
+              {"event": "d", "kind": "load_step", "area": "Midmarsh", "size_mw": -100}]
+    case = build_case(case_dir(), settings(limits={"min_sustain_minutes": 20}), units, AREA,
+                      events)
+    res = optreserve.solve(case, engine="highspy", mip_gap=1e-9)
+    ref = dense_optimum(cap, [2] * n, [10] * n, 50.0, F, F, 40.0,
+                        np.minimum(cap - out, e_up * 3), np.minimum(out, e_dn * 3), pu, pd_,
+                        [True] * n, [True] * n, [(120.0, set()), (-100.0, set())])
+    assert ref is not None
+    assert res.objective_per_h == pytest.approx(ref[0], rel=1e-6)
+    al = res.allocation.set_index("unit")
+    assert (al["headroom_up_mw"].to_numpy() <= e_up * 3 + 1e-7).all()

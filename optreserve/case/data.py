@@ -17,6 +17,7 @@ class Limits:
     full_activation_deviation_hz: float
     max_nadir_deviation_hz: float | None = None
     max_rocof_hz_per_s: float | None = None
+    min_sustain_minutes: float | None = None  # energy-limited providers (case/products.py)
 
 
 @dataclass(frozen=True)

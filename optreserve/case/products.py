@@ -64,11 +64,38 @@ def check_products(folder: Path, units: pd.DataFrame | None, events: pd.DataFram
                                       col).items():
             units[name] = v
     ser = series_raw.get("units")
+    _check_energy(folder, units, ser, settings, col)
     if ser is not None and "provides" in ser.columns:
         for name, v in parse_provides(ser["provides"].to_numpy(object), ser["_line"].to_numpy(),
                                       str(folder / "units_by_period.csv"), col,
                                       keep_empty=True).items():
             ser[name] = pd.Series(v, index=ser.index, dtype=object)
+
+
+def _check_energy(folder: Path, units, ser, settings, col) -> None:
+    """An energy column needs [limits] min_sustain_minutes (contract v2)."""
+    if settings.get("limits.min_sustain_minutes") is not None:
+        return
+    for file, df in (("units.csv", units), ("units_by_period.csv", ser)):
+        if df is None:
+            continue
+        for name in ENERGY_COLS:
+            if name in df.columns and df[name].notna().any():
+                r = int(np.argmax(df[name].notna().to_numpy()))
+                col.error(str(folder / file), f"{name} is given but case.toml has no [limits] "
+                          "min_sustain_minutes (how long full activation must last)",
+                          int(df["_line"].iloc[r]), name)
+                return
+
+
+def energy_caps(case, E_up, E_dn) -> tuple[np.ndarray, np.ndarray]:
+    """Headroom an energy-limited provider can sustain for min_sustain_minutes:
+    headroom <= energy_mwh * 60 / min_sustain_minutes (NaN: no energy limit)."""
+    t = case.limits.min_sustain_minutes
+    E_up, E_dn = np.asarray(E_up, float), np.asarray(E_dn, float)
+    if t is None:
+        return np.full(E_up.shape, np.nan), np.full(E_dn.shape, np.nan)
+    return E_up * 60.0 / t, E_dn * 60.0 / t
 
 
 def unit_flags(units: pd.DataFrame) -> dict[str, np.ndarray]:
@@ -86,7 +113,9 @@ def _col(units: pd.DataFrame, name: str, default: np.ndarray) -> np.ndarray:
 
 
 # derived override columns the reader keeps in units_by_period.csv (the user writes `provides`)
-PRODUCT_SERIES_COLS = ("provides_always", "provides_up", "provides_down")
+PRODUCT_SERIES_COLS = ("provides_always", "provides_up", "provides_down", "energy_up_mwh",
+                       "energy_down_mwh")
+ENERGY_COLS = ("energy_up_mwh", "energy_down_mwh")
 
 
 # ------------------------------------------------------------------ common-mode trips

@@ -102,6 +102,8 @@ UNIT_COLS = [
     Col("inertia_s", "float", False, math.nan, check=_nonneg),
     Col("activation_time_s", "float", False, math.nan, check=_positive),
     Col("energy_price_per_mwh", "float", False, math.nan),
+    Col("energy_up_mwh", "float", False, math.nan, check=_nonneg),  # case/products.py
+    Col("energy_down_mwh", "float", False, math.nan, check=_nonneg),
 ]
 AREA_COLS = [
     Col("area", "id", True),
@@ -322,6 +324,7 @@ _TOML_SCHEMA: dict[str, dict[str, str]] = {
         "max_nadir_deviation_hz": "pos",
         "max_rocof_hz_per_s": "pos",
         "rules": "str",  # a regulatory parameter set (rules.py) filling the limits not given
+        "min_sustain_minutes": "pos",  # energy-limited providers (case/products.py)
     },
     "droop": {"steps_pct": "poslist", "change_penalty_per_unit": "nonneg",
               "hold_periods": "posint"},
@@ -561,6 +564,7 @@ def load_case(path: str | Path) -> Case:
             full_activation_deviation_hz=F_act,
             max_nadir_deviation_hz=settings.get("limits.max_nadir_deviation_hz"),
             max_rocof_hz_per_s=settings.get("limits.max_rocof_hz_per_s"),
+            min_sustain_minutes=settings.get("limits.min_sustain_minutes"),
         ),
         droop=DroopSettings(
             steps_pct=steps,

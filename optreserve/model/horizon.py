@@ -10,7 +10,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from optreserve.case.data import Case
-from optreserve.case.products import trip_members, unit_flags
+from optreserve.case.products import ENERGY_COLS, energy_caps, trip_members, unit_flags
 from optreserve.network.ptdf import ptdf
 
 
@@ -107,6 +107,17 @@ def directions(case: Case, room_up, room_dn, up_cap, dn_cap, provides, need_up, 
             np.where(prov_dn, R_dn, 0.0))
 
 
+def reserve_caps(case: Case, get) -> tuple[np.ndarray, np.ndarray]:
+    """Capability caps on up and down headroom (NaN: none): reserve_*_max_mw and, for an
+    energy-limited provider, what it can sustain for min_sustain_minutes. get(column) gives
+    the column's values (static, or per period)."""
+    up, dn = get("reserve_up_max_mw"), get("reserve_down_max_mw")
+    if not any(c in case.units.columns for c in ENERGY_COLS):
+        return up, dn
+    e_up, e_dn = energy_caps(case, get("energy_up_mwh"), get("energy_down_mwh"))
+    return np.fmin(up, e_up), np.fmin(dn, e_dn)
+
+
 def unit_flag_matrix(case: Case, name: str) -> np.ndarray:
     """(T, N) per-period product flag (case/products.py columns), defaulting to `provides`
     (no unit always on) for tables built without them."""
@@ -125,8 +136,7 @@ def unit_data(case: Case, need_up: bool, need_dn: bool) -> UnitData:
     d = u["deadband_mhz"].to_numpy(float) / 1000.0
     out, mn = u["output_mw"].to_numpy(float), u["min_output_mw"].to_numpy(float)
     K_hi, capable, R_up, R_dn = capability(
-        case, cap - out, out - mn,
-        u["reserve_up_max_mw"].to_numpy(float), u["reserve_down_max_mw"].to_numpy(float),
+        case, cap - out, out - mn, *reserve_caps(case, lambda c: u[c].to_numpy(float)),
         u["provides"].to_numpy(bool), need_up, need_dn,
         *(unit_flags(u)[k] for k in ("provides_up", "provides_down")))
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -238,8 +248,7 @@ def prepare(case: Case) -> Horizon:
     room_up = np.where(disp, cap - mn_t, cap - out_t)
     room_dn = np.where(disp, cap - mn_t, out_t - mn_t)
     K_hi_t, avail, resp_up, resp_dn, R_up, R_dn = directions(
-        case, room_up, room_dn,
-        um("reserve_up_max_mw").astype(float), um("reserve_down_max_mw").astype(float),
+        case, room_up, room_dn, *reserve_caps(case, lambda c: um(c).astype(float)),
         um("provides").astype(bool), need_up[:, None], need_dn[:, None],
         unit_flag_matrix(case, "provides_up"), unit_flag_matrix(case, "provides_down"))
     u0 = unit_data(case, bool(need_up.any()), bool(need_dn.any()))
