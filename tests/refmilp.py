@@ -10,6 +10,8 @@ at deviation F is K_i F and full activation at F_act asks r >= K_i F_act.
   headroom:  r_dir_i >= F_act K_i where unit i responds in that direction and the case has
              events that way; 0 <= r_dir_i <= cap_dir_i (room, caps, energy); r_dir_i = 0
              where the direction is blocked
+  own:       sum_i r_up_i >= min_own_reserve_mw (one area); r_up_i <= cap_up_i x
+             participation (only a provider that takes part holds headroom)
   event e:   sum over units responding in e's direction and not lost in e of F K_i
              + F D >= |dP_e|                          (general law: df = -dP / sum beta)
   cost:      sum price_up r_up + price_dn r_dn (per hour)
@@ -23,9 +25,10 @@ from scipy.optimize import Bounds, LinearConstraint, milp
 
 def dense_optimum(cap_mw, droop_min_pct, droop_max_pct, f_n, F, F_act, D_mw_per_hz,
                   room_up, room_dn, price_up, price_dn, resp_up, resp_dn, events,
-                  always=None, steps_pct=None):
-    """events: list of (signed size MW, set of lost unit indices). Returns (cost, K, r_up,
-    r_dn) of the optimum, or None when infeasible."""
+                  always=None, steps_pct=None, own_mw=0.0):
+    """events: list of (signed size MW, set of lost unit indices); own_mw: up headroom the
+    area must hold (min_own_reserve_mw). Returns (cost, K, r_up, r_dn) of the optimum, or None
+    when infeasible."""
     cap = np.asarray(cap_mw, float)
     n = len(cap)
     K_lo = cap / (np.asarray(droop_max_pct, float) / 100 * f_n)
@@ -75,6 +78,11 @@ def dense_optimum(cap_mw, droop_min_pct, droop_max_pct, f_n, F, F_act, D_mw_per_
             mine = np.nonzero(zi == i)[0]
             row([(iK + i, 1)] + [(iZ + k, -g[k]) for k in mine], 0, 0)
             row([(iZ + k, 1) for k in mine], 1 if always[i] else -np.inf, 1)
+        # only a participating provider holds headroom (case format: "held by providers")
+        part = [(iZ + i, 1.0)] if steps_pct is None else [(iZ + k, 1.0)
+                                                          for k in np.nonzero(zi == i)[0]]
+        if np.isfinite(hi[iU + i]):
+            row([(iU + i, 1.0)] + [(k, -v * hi[iU + i]) for k, v in part], -np.inf, 0)
         if need_up and resp_up[i]:
             row([(iU + i, 1), (iK + i, -F_act)], 0, np.inf)
         if need_dn and resp_dn[i]:
@@ -85,6 +93,8 @@ def dense_optimum(cap_mw, droop_min_pct, droop_max_pct, f_n, F, F_act, D_mw_per_
         resp = resp_up if size > 0 else resp_dn
         row([(iK + i, F) for i in range(n) if resp[i] and i not in lost], abs(size) - F
             * D_mw_per_hz, np.inf)
+    if own_mw > 0:
+        row([(iU + i, 1) for i in range(n)], own_mw, np.inf)
     res = milp(c, constraints=LinearConstraint(np.array(rows), rlo, rhi),
                integrality=integrality, bounds=Bounds(lo, hi),
                options={"mip_rel_gap": 1e-12, "presolve": True})

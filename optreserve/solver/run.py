@@ -31,7 +31,8 @@ FIXED_POINT_MAX_ITER = 30
 def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
           mip_gap: float | None = None, relax: bool = False, verbose: bool = False,
           extend: Callable[[LinearProgram, ModelInfo], None] | None = None,
-          hz: Horizon | None = None) -> Result:
+          hz: Horizon | None = None, incremental: bool = False,
+          price_step: float | None = None) -> Result:
     """Least-cost droop and headroom allocation meeting every event's limits.
 
     engine: "pyomo" (Pyomo model on Pyomo's HiGHS interface), "highspy" (bulk load), or
@@ -39,6 +40,9 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     extend: called on every model built (lp, info) to add blocks or change the objective
       (studies such as retune proposals); the result's cost is always the headroom cost.
     hz: the stacked case (model.prepare), e.g. with extra event instances.
+    incremental: also re-solve once per event instance (and own-reserve requirement) grown
+      by price_step MW (default max(1 MW, 1 %)) for incremental prices (solver/incremental.py;
+      not with extend, whose objective is not the cost).
     Raises InfeasibleError (with a diagnosis) when no allocation meets the limits."""
     t_start = time.perf_counter()
     time_limit = time_limit if time_limit is not None else case.solver.time_limit_s
@@ -137,6 +141,13 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     t_price = _attach_prices(result, lp, info, out)
     t_build += t_price[0]
     t_solve += t_price[1]
+    if incremental and extend is None:
+        from optreserve.solver.incremental import attach_incremental
+
+        t_inc = attach_incremental(result, case, hz, info, out.x, price_step, time_limit,
+                                   nadir["scale"])
+        t_build += t_inc[0]
+        t_solve += t_inc[1]
     result.timings_s.update(read=case.read_time_s, build=t_build, solve=t_solve, write=0.0,
                             total=time.perf_counter() - t_start + case.read_time_s)
     return result
