@@ -120,3 +120,24 @@ def test_cli_writes_both_prices_and_says_which_is_which(case_dir, tmp_path, caps
     assert main(["solve", str(case.path), "--out", str(out2), "--no-incremental",
                  "--quiet"]) == 0
     assert "incremental_cost_per_mw_h" not in pd.read_csv(out2 / "events.csv").columns
+
+
+@pytest.mark.parametrize("step,want", [(None, 0.0), (5.0, 4.0)])
+def test_worked_example_of_formulation_md(case_dir, step, want):
+    """docs/formulation.md section 12a, hand arithmetic: steps 4 and 5 % on 500 MW (250 and
+    200 MW/Hz: 50 and 40 MW at 0.2 Hz), price 2, a 38 MW step: met at 5 %, cost 80, slack
+    row, blank marginal price; +1 MW still fits (0); +5 MW needs 4 %: (100 - 80) / 5 = 4.
+    Continuous droop: tight row, marginal price 2."""
+    units = [unit("Solo", "Midmarsh", 500, 250, 2, 12, price_up=2.0)]
+    area = [{"area": "Midmarsh", "load_mw": 1000}]
+    ev = [{"event": "s", "kind": "load_step", "area": "Midmarsh", "size_mw": 38}]
+    case = build_case(case_dir(), settings(droop={"steps_pct": [4.0, 5.0]}), units, area, ev)
+    res = optreserve.solve(case, engine="highspy", mip_gap=1e-9, incremental=True,
+                           price_step=step)
+    assert res.objective_per_h == pytest.approx(80.0, rel=1e-9)
+    row = res.events.iloc[0]
+    assert np.isnan(row["marginal_cost_per_mw_h"])
+    assert row["incremental_cost_per_mw_h"] == pytest.approx(want, abs=1e-6)
+    cont = optreserve.solve(build_case(case_dir(), settings(), units, area, ev),
+                            engine="highspy", mip_gap=1e-9)
+    assert cont.events.iloc[0]["marginal_cost_per_mw_h"] == pytest.approx(2.0, rel=1e-5)

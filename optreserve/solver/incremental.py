@@ -52,9 +52,8 @@ PRICE_FIXED_POINT_TOL_HZ = 1e-7
 TIGHT_REL = 1e-6
 
 
-# The base optimum still meets a grown case's rows within this (relative; HiGHS' own
-# feasibility tolerance is 1e-7): then the grown optimum costs the same (see
-# incremental_prices), and no re-solve is needed.
+# Nadir rows of a grown event count as met within this (relative; HiGHS' own feasibility
+# tolerance is 1e-7).
 FEASIBLE_REL = 1e-6
 
 
@@ -138,17 +137,36 @@ def optimal_cost(case, hz: Horizon, info: ModelInfo, start: np.ndarray | None,
     return lp.objective(out.x), out.x, solve_s
 
 
-def still_feasible(case, hz: Horizon, info: ModelInfo, x: np.ndarray, nadir_scale=None) -> bool:
-    """Whether the allocation x meets every row of the case stacked as hz (within the
-    solver's feasibility tolerance, relative)."""
-    lp, _ = build_model(case, x_hat=info.x_hat, hz=hz, nadir_scale=nadir_scale)
-    if lp.n_cols != len(x):
+def event_still_met(case, hz: Horizon, info: ModelInfo, lp: LinearProgram, x: np.ndarray,
+                    m: int, nadir_scale=None) -> bool:
+    """Whether the allocation x (a solution of the base program lp) still meets instance m
+    of the case stacked as hz: its independently recalculated settled deviation and flows
+    (verify/settle.py) within the limits, and its nadir rows (model/nadir.py) held. The
+    other rows do not depend on the instance's size."""
+    from optreserve.model.horizon import out_pairs, responds_in
+    from optreserve.model.nadir import nadir_terms
+    from optreserve.solver.readback import evaluate_allocation, period_values
+
+    gain, r_up, r_dn = period_values(lp, info, x)
+    pts = evaluate_allocation(case, hz, gain, r_up, r_dn)
+    if not abs(pts.deviation_hz[m]) <= info.F_model:
         return False
-    act = lp.A @ x
-    tol = FEASIBLE_REL * np.maximum(1.0, np.abs(np.where(np.isfinite(lp.row_lo), lp.row_lo,
-                                                          lp.row_hi)))
-    with np.errstate(invalid="ignore"):
-        return bool(np.all(act >= lp.row_lo - tol) and np.all(act <= lp.row_hi + tol))
+    t = hz.inst_t[m]
+    if hz.F0.shape[1] and not np.all(np.abs(pts.flow_after_mw[m]) <= hz.Fmax[t]):
+        return False
+    if case.limits.max_nadir_deviation_hz is not None:
+        coef, need = nadir_terms(case, hz, nadir_scale)
+        live = responds_in(hz, [m])[0].copy()
+        mm, jj = out_pairs(hz, np.array([m]))
+        live[jj] = False
+        K = lp.value(x, "K").reshape(hz.n_blocks, hz.N)[hz.block[t]]
+        reach = np.maximum(case.limits.max_nadir_deviation_hz - hz.d_hz, 0.0)
+        r = r_up[t] if hz.sigma[m] > 0 else r_dn[t]
+        q = np.where(live, np.minimum(r, K * reach), 0.0)
+        have = coef[m] @ q
+        if not np.all(have >= need[m] - FEASIBLE_REL * np.maximum(1.0, np.abs(need[m]))):
+            return False
+    return True
 
 
 def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
@@ -169,13 +187,14 @@ def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
     if not np.isfinite(base):
         return event, reserve, solve_s, time.perf_counter() - t0
     fixed = hz.dP_var < 0 if hz.dP_var is not None else np.ones(M, bool)
-    # Without dead-band flow guesses or co-optimised flows every row family tightens as an
-    # event or requirement grows (settled and nadir rows need more; a flow row's shift grows
-    # in proportion at fixed gains), so the optimal cost cannot fall; if the base optimum
-    # still meets the grown case, the grown optimum costs exactly the same: 0, no re-solve.
-    from optreserve.solver.run import _needs_fixed_point
-
-    shortcut = not (_needs_fixed_point(info) or hz.co_opt)
+    # Every limit tightens as an event or requirement grows (the settled and nadir rows need
+    # more; at fixed gains a flow's shift grows in proportion), so the optimal cost does not
+    # fall: if the base optimum still meets the grown case, the grown optimum costs the same,
+    # 0, and no re-solve is run. (With dead bands on linked areas the responses' shares move
+    # with the deviation; that flows then still only tighten is assumed. Co-optimised
+    # outputs move the pre-event flows: always re-solved.)
+    shortcut = not hz.co_opt and x0 is not None
+    lp0, info0 = build_model(case, x_hat=info.x_hat, hz=hz, nadir_scale=nadir_scale)
     steps = price_steps(hz.dP)
     if step_mw is not None:
         steps = price_steps(hz.dP, step_mw)
@@ -183,7 +202,7 @@ def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
         dP = hz.dP.copy()
         dP[m] += steps[m]
         grown = replace(hz, dP=dP)
-        if shortcut and still_feasible(case, grown, info, x0, nadir_scale):
+        if shortcut and event_still_met(case, grown, info0, lp0, x0, m, nadir_scale):
             event[m] = 0.0
             continue
         cost, _, s = optimal_cost(case, grown, info, x0, time_limit, nadir_scale)
@@ -195,7 +214,8 @@ def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
         own = hz.own.copy()
         own[ta[k], aa[k]] += r_steps[k]
         grown = replace(hz, own=own)
-        if shortcut and still_feasible(case, grown, info, x0, nadir_scale):
+        held = lp0.value(x0, "r_up").reshape(hz.T, hz.N)[ta[k]][hz.area == aa[k]].sum()
+        if shortcut and held >= own[ta[k], aa[k]]:
             reserve[ta[k], aa[k]] = 0.0
             continue
         cost, _, s = optimal_cost(case, grown, info, x0, time_limit, nadir_scale)
