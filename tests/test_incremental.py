@@ -37,8 +37,8 @@ def step_case(folder, seed, own=0.0):
              "min_own_reserve_mw": own}]
     case = build_case(folder, settings(limits={"full_activation_deviation_hz": F},
                                        droop={"steps_pct": STEPS}), units, area, events)
-    spec = dict(cap=cap, out=out, pu=pu, pd=pd_, big=big,
-                sizes=[float(out[big]), up, -dn])
+    spec = {"cap": cap, "out": out, "pu": pu, "pd": pd_, "big": big,
+            "sizes": [float(out[big]), up, -dn]}
     return case, spec
 
 

@@ -157,7 +157,7 @@ def event_still_met(case, hz: Horizon, info: ModelInfo, lp: LinearProgram, x: np
     if case.limits.max_nadir_deviation_hz is not None:
         coef, need = nadir_terms(case, hz, nadir_scale)
         live = responds_in(hz, [m])[0].copy()
-        mm, jj = out_pairs(hz, np.array([m]))
+        _, jj = out_pairs(hz, np.array([m]))
         live[jj] = False
         K = lp.value(x, "K").reshape(hz.n_blocks, hz.N)[hz.block[t]]
         reach = np.maximum(case.limits.max_nadir_deviation_hz - hz.d_hz, 0.0)

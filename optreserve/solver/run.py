@@ -141,7 +141,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     t_price = _attach_prices(result, lp, info, out)
     t_build += t_price[0]
     t_solve += t_price[1]
-    if incremental and extend is None:
+    if incremental and extend is None and not relax:
         from optreserve.solver.incremental import attach_incremental
 
         t_inc = attach_incremental(result, case, hz, info, out.x, price_step, time_limit,
