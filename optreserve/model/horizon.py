@@ -290,8 +290,11 @@ def prepare(case: Case) -> Horizon:
         K_hi_b=K_hi_b, capable_b=capable_b,
         co_opt=bool(disp.any()), disp=disp, e_price=np.nan_to_num(e_price), cap=cap,
         mn=mn_t, out=out_t, load=case.area_matrix("load_mw").astype(float),
+        # a single dispatched unit's trip follows its output; a common-mode trip keeps the
+        # sum of the scheduled outputs (one output variable per event size only)
         dP_var=np.where(_from_output(case, e) & (ev_trip[e] >= 0) & disp[np.maximum(
-            ev_trip[e], 0)], ev_trip[e], -1).astype(np.int64),
+            ev_trip[e], 0)] & (np.diff(members.tocsr().indptr)[e] == 1), ev_trip[e],
+            -1).astype(np.int64),
         resp_up=resp_up, resp_dn=resp_dn, always_b=always_b & capable_b,
         lost=members[e].tocsr(),
     )
