@@ -141,3 +141,25 @@ def test_worked_example_of_formulation_md(case_dir, step, want):
     cont = optreserve.solve(build_case(case_dir(), settings(), units, area, ev),
                             engine="highspy", mip_gap=1e-9)
     assert cont.events.iloc[0]["marginal_cost_per_mw_h"] == pytest.approx(2.0, rel=1e-5)
+
+
+def test_horizon_incremental_is_per_hour_of_the_period(case_dir):
+    """Contract v1: costs weigh each period by its hours (objective_total); the incremental
+    cost is per MW and hour of the event's period. Two half-hour periods with the droop held
+    per period are two independent snapshots, so each instance's incremental cost equals the
+    snapshot's from the independent scipy.optimize.milp re-solve."""
+    case, spec = step_case(case_dir(), 42)
+    folder = case.path
+    toml = (folder / "case.toml").read_text().replace(
+        "[droop]", "[horizon]\nperiod_hours = 0.5\n\n[droop]\nhold_periods = 1")
+    (folder / "case.toml").write_text(toml)
+    (folder / "units_by_period.csv").write_text("period,unit,output_mw\n1,U1,\n2,U1,\n")
+    res = optreserve.solve(optreserve.load_case(folder), engine="highspy", mip_gap=1e-9,
+                           incremental=True)
+    base = reference_cost(spec)
+    got = res.events.set_index(["event", "period"])["incremental_cost_per_mw_h"]
+    for k, name in enumerate(("trip", "rise", "drop")):
+        step = max(1.0, 0.01 * abs(spec["sizes"][k]))
+        want = (reference_cost(spec, k, step) - base) / step
+        for period in ("1", "2"):
+            assert got[(name, period)] == pytest.approx(want, rel=1e-4, abs=1e-6)
