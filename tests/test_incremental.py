@@ -163,3 +163,12 @@ def test_horizon_incremental_is_per_hour_of_the_period(case_dir):
         want = (reference_cost(spec, k, step) - base) / step
         for period in ("1", "2"):
             assert got[(name, period)] == pytest.approx(want, rel=1e-4, abs=1e-6)
+
+
+def test_bad_price_step_is_an_input_error(case_dir, tmp_path, capsys):
+    """RULES.md: bad input exits 2 and writes nothing."""
+    case, _ = step_case(case_dir(), 32)
+    out = tmp_path / "res"
+    assert main(["solve", str(case.path), "--out", str(out), "--price-step", "0"]) == 2
+    assert "--price-step" in capsys.readouterr().err
+    assert not out.exists()

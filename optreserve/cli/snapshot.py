@@ -80,6 +80,11 @@ def cmd_solve(args) -> int:
         print("error: --report needs --out DIR (the report is written next to the results)",
               file=sys.stderr)
         return EXIT_INPUT
+    step = getattr(args, "price_step", None)
+    if step is not None and not (step > 0 and step < float("inf")):
+        print(f"error: --price-step must be a positive number of MW, got {step:g}",
+              file=sys.stderr)
+        return EXIT_INPUT
     case = load_case(args.case)
     _warn(case, args.quiet)
     try:

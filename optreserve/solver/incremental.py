@@ -61,6 +61,8 @@ def price_steps(size_mw: np.ndarray, step_mw: float | None = None) -> np.ndarray
     """The step of each event (or requirement) of the given sizes [MW]."""
     size = np.abs(np.asarray(size_mw, float))
     if step_mw is not None:
+        if not (np.isfinite(step_mw) and step_mw > 0):
+            raise ValueError(f"the price step must be a positive number of MW, got {step_mw}")
         return np.full(size.shape, float(step_mw))
     return np.maximum(PRICE_STEP_MIN_MW, PRICE_STEP_SHARE * size)
 
