@@ -62,30 +62,30 @@ def test_guide_time_series_table_matches_per_period_flags():
 def test_a_later_version_declares_a_column_and_the_reader_types_and_bounds_it(tmp_path):
     """Version-2 columns are rows of the same table (columns.declare): read without the
     unknown-column warning, typed, bounded with file/row/column, and allowed per period.
-    The contract's energy_up_mwh column (version 2) serves as the example."""
+    A column no version declares yet (ramp_limit_mw_per_min) serves as the example."""
     from conftest import write_case
 
     import optreserve
     from optreserve.case.columns import UNIT_COLS, Col, declare
 
     units = [{"unit": "Fen_1", "area": "Fen", "capacity_mw": 100, "output_mw": 50,
-              "droop_min_pct": 4, "droop_max_pct": 6, "energy_up_mwh": 20},
+              "droop_min_pct": 4, "droop_max_pct": 6, "ramp_limit_mw_per_min": 20},
              {"unit": "Fen_2", "area": "Fen", "capacity_mw": 100, "output_mw": 50,
-              "droop_min_pct": 4, "droop_max_pct": 6, "energy_up_mwh": -1}]
+              "droop_min_pct": 4, "droop_max_pct": 6, "ramp_limit_mw_per_min": -1}]
     folder = write_case(tmp_path / "c", {"limits": {"max_settled_deviation_hz": 0.2}}, units,
                         [{"area": "Fen", "load_mw": 100}],
                         [{"event": "step", "kind": "load_step", "area": "Fen", "size_mw": 5}])
     before = optreserve.load_case(folder).warnings  # not declared: ignored, with a warning
-    assert any("energy_up_mwh" in w and "unknown column" in w for w in before)
-    declare("units.csv", Col("energy_up_mwh", "float", False, float("nan"), lo=0.0, hi=1e7,
-                             unit="MWh", per_period=True, version=2))
+    assert any("ramp_limit_mw_per_min" in w and "unknown column" in w for w in before)
+    declare("units.csv", Col("ramp_limit_mw_per_min", "float", False, float("nan"), lo=0.0, hi=1e7,
+                             unit="MW/min", per_period=True, version=2))
     try:
         with pytest.raises(optreserve.CaseError) as info:
             optreserve.load_case(folder)
         (p,) = info.value.problems
-        assert (Path(p.file).name, p.row, p.column) == ("units.csv", 3, "energy_up_mwh")
-        assert "energy_up_mwh" in series_columns("units")
+        assert (Path(p.file).name, p.row, p.column) == ("units.csv", 3, "ramp_limit_mw_per_min")
+        assert "ramp_limit_mw_per_min" in series_columns("units")
         with pytest.raises(ValueError):
-            declare("units.csv", Col("energy_up_mwh", "float"))
+            declare("units.csv", Col("ramp_limit_mw_per_min", "float"))
     finally:
-        UNIT_COLS[:] = [c for c in UNIT_COLS if c.name != "energy_up_mwh"]
+        UNIT_COLS[:] = [c for c in UNIT_COLS if c.name != "ramp_limit_mw_per_min"]

@@ -281,7 +281,7 @@ def test_cli_solve_writes_results(good, tmp_path):
                                "headroom_up_mw", "headroom_down_mw", "cost_per_h"],
             "events.csv": ["event", "kind", "area", "size_mw", "settled_frequency_hz",
                            "settled_deviation_hz", "limit_hz", "binding",
-                           "marginal_cost_per_mw_h"],
+                           "marginal_cost_per_mw_h", "incremental_cost_per_mw_h"],  # (v2)
             "links.csv": ["link", "event", "flow_before_mw", "flow_after_mw", "limit_mw",
                           "loading_pct"]}
     for name, want in cols.items():

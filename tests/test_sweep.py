@@ -39,7 +39,7 @@ def test_sweep_marks_infeasible_points_and_costs_match_hand(case_dir):
     assert table.loc[table["status"] == "infeasible", "objective_per_h"].isna().all()
     # the settled row binds at every feasible point: price = 2 (one MW more needs one MW
     # more headroom at price 2, formulation.md section 12)
-    assert list(feasible["price_per_mw_h:step"]) == pytest.approx([2.0] * 3, rel=1e-5)
+    assert list(feasible["marginal_cost_per_mw_h:step"]) == pytest.approx([2.0] * 3, rel=1e-5)
     assert all(feasible["binding_events"] == "step")
 
 

@@ -15,6 +15,7 @@ import pandas as pd
 from optreserve.case.columns import EVENT_KINDS, REACTANCE_SPREAD
 from optreserve.case.data import Case
 from optreserve.case.problems import _Collector, suggest
+from optreserve.case.products import trip_lookup
 
 # Common practice: governor droop settings between 2 % and 12 %; dead bands above 50 mHz are
 # far outside what grid codes accept for frequency-containment providers.
@@ -95,8 +96,7 @@ def check_reactance_spread(x: np.ndarray, lines: np.ndarray, file: str, col: _Co
 
 def _check_events(ev: pd.DataFrame, file: str, units: pd.DataFrame, area_ids: set[str],
                   col: _Collector):
-    unit_area = dict(zip(units["unit"], units["area"]))
-    unit_out = dict(zip(units["unit"], units["output_mw"]))
+    unit_area, unit_out = trip_lookup(ev, units, file, col)  # case/products.py (G1+G2)
     unit_cap = dict(zip(units["unit"], units["capacity_mw"]))
     unit_min = dict(zip(units["unit"], units["min_output_mw"]))
     areas_out, sizes = [], []

@@ -51,6 +51,7 @@ MW_MAX = 1.0e6
 MW_MIN = 1.0e-3
 TINY = 1.0e-9
 PRICE_MAX = 1.0e9
+ENERGY_MAX_MWH = 1.0e9  # a reservoir's whole year at MW_MAX is below 1e10; storage far less
 REACTANCE_MIN_PU, REACTANCE_MAX_PU = 1.0e-6, 1.0e3
 REACTANCE_SPREAD = 1.0e6
 DROOP_MIN_PCT, DROOP_MAX_PCT = 0.1, 100.0
@@ -128,15 +129,19 @@ UNIT_COLS: list[Col] = [
     Col("price_down_per_mw_h", "float", False, 0.0, **_NONNEG, hi=PRICE_MAX,
         unit="per MW·h", per_period=True,
         meaning="cost of holding 1 MW of down headroom for one hour"),
-    # the spelling of `provides` (true/false/always/up/down) belongs to the products reader
-    Col("provides", "bool", False, True, unit="bool", per_period=True,
-        meaning="false: the unit may not carry reserve"),
+    # the words of `provides` (true/false/always/up/down) are parsed by case/products.py
+    Col("provides", "text", False, "true", unit="word", per_period=True,
+        meaning="true, false, always, up or down (participation and direction)"),
     Col("inertia_s", "float", False, NAN, **_NONNEG, hi=INERTIA_MAX_S, unit="s",
         per_period=False, meaning="inertia constant H on the capacity base"),
     Col("activation_time_s", "float", False, NAN, lo=ACTIVATION_MIN_S, hi=ACTIVATION_MAX_S,
         unit="s", per_period=False, meaning="time to deliver the full headroom"),
     Col("energy_price_per_mwh", "float", False, NAN, lo=-PRICE_MAX, hi=PRICE_MAX,
         unit="per MWh", per_period=True, meaning="energy price under co-optimisation"),
+    Col("energy_up_mwh", "float", False, NAN, **_NONNEG, hi=ENERGY_MAX_MWH, unit="MWh",
+        per_period=True, meaning="energy the unit can deliver above its output"),
+    Col("energy_down_mwh", "float", False, NAN, **_NONNEG, hi=ENERGY_MAX_MWH, unit="MWh",
+        per_period=True, meaning="energy the unit can absorb below its output"),
 ]
 AREA_COLS: list[Col] = [
     Col("area", "id", True, meaning="unique id"),
@@ -191,7 +196,8 @@ def declare(file: str, col: Col) -> None:
 
 # columns a later reader step derives from a declared one and keeps per period (for example
 # the products reader's provides_up from `provides`); they are not read from the file
-DERIVED_SERIES_COLS: dict[str, set[str]] = {"units": set(), "areas": set(), "links": set()}
+DERIVED_SERIES_COLS: dict[str, set[str]] = {
+    "units": {"provides_always", "provides_up", "provides_down"}, "areas": set(), "links": set()}
 
 
 def series_columns(key: str) -> set[str]:

@@ -8,6 +8,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from optreserve.case.products import trip_members
+
 
 @dataclass(frozen=True)
 class Limits:
@@ -15,6 +17,7 @@ class Limits:
     full_activation_deviation_hz: float
     max_nadir_deviation_hz: float | None = None
     max_rocof_hz_per_s: float | None = None
+    min_sustain_minutes: float | None = None  # energy-limited providers (case/products.py)
 
 
 @dataclass(frozen=True)
@@ -138,10 +141,10 @@ class Case:
         size = ev["size_mw"].to_numpy(float)[e]
         if "size_from_output" in ev.columns:
             from_out = ev["size_from_output"].to_numpy(bool)[e]
-            if from_out.any():
-                upos = {u: k for k, u in enumerate(self.units["unit"])}
-                j = np.array([upos.get(u, 0) for u in ev["unit"]])[e]
-                size = np.where(from_out, self.unit_matrix("output_mw")[t, j], size)
+            if from_out.any():  # the lost units' outputs in that period (all of a G1+G2)
+                lost_out = (trip_members(self.units, ev) @ self.unit_matrix(
+                    "output_mw").astype(float).T)  # (E, T)
+                size = np.where(from_out, lost_out[e, t], size)
         return pd.DataFrame({"event_index": e, "t": t, "size_mw": size})
 
     def snapshots(self) -> list["Case"]:
@@ -179,9 +182,10 @@ class Case:
                 frames[key] = df
             e = ev[(ev["period"].isna()) | (ev["period"] == t)].copy()
             if len(e) and e["size_from_output"].any():
-                out_now = dict(zip(frames["units"]["unit"], frames["units"]["output_mw"]))
                 m = e["size_from_output"].to_numpy(bool)
-                e.loc[m, "size_mw"] = [out_now[u] for u in e.loc[m, "unit"]]
+                lost_out = trip_members(frames["units"], e) @ frames["units"][
+                    "output_mw"].to_numpy(float)
+                e.loc[m, "size_mw"] = lost_out[m]
             out.append(replace(self, units=frames["units"], areas=frames["areas"],
                                links=frames["links"], events=e.reset_index(drop=True),
                                periods=(), period_hours=(), series={}))

@@ -48,6 +48,7 @@ from optreserve.case.columns import (
 )
 from optreserve.case.csvio import FALSE_WORDS, TRUE_WORDS, _read_csv, _Table, _typed_table
 from optreserve.case.data import Case, DroopSettings, Limits, SolverSettings
+from optreserve.case.products import check_products
 from optreserve.case.problems import MAX_PROBLEMS, _Collector
 from optreserve.case.rules import fill_limits, rule_warnings
 from optreserve.case.series import SERIES, _check_series, _period_key
@@ -144,6 +145,7 @@ def load_case(path: str | Path) -> Case:
 
     units, areas = tables["units.csv"], tables["areas.csv"]
     links, events = tables["links.csv"], tables["events.csv"]
+    check_products(folder, units, events, series_raw, settings, col)  # case/products.py
 
     if settings is not None and "limits.max_settled_deviation_hz" not in settings and (
         folder / "case.toml"
@@ -233,6 +235,7 @@ def load_case(path: str | Path) -> Case:
             full_activation_deviation_hz=F_act,
             max_nadir_deviation_hz=settings.get("limits.max_nadir_deviation_hz"),
             max_rocof_hz_per_s=settings.get("limits.max_rocof_hz_per_s"),
+            min_sustain_minutes=settings.get("limits.min_sustain_minutes"),
         ),
         droop=DroopSettings(
             steps_pct=steps,

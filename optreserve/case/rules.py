@@ -25,6 +25,9 @@ class RuleSet:
     max_deadband_mhz: float
     reference_incident_mw: float | None  # None: not recorded, no check
     sources: str
+    # minimum time an energy-limited FCR provider must sustain full activation; None: the
+    # rules leave it to the area's operators and no figure is recorded here (not filled)
+    min_sustain_minutes: float | None = None
 
 
 RULE_SETS: dict[str, RuleSet] = {r.name: r for r in (
@@ -34,8 +37,11 @@ RULE_SETS: dict[str, RuleSet] = {r.name: r for r in (
             max_nadir_deviation_hz=0.8,  # Annex III Table 1 (memory)
             max_deadband_mhz=10.0,  # Annex V (confirmed)
             reference_incident_mw=3000.0,  # Art. 153(2)(b)(i) (confirmed)
-            sources="EU 2017/1485: Annex V and Art. 153 confirmed; Annex III values from "
-                    "memory"),
+            sources="EU 2017/1485: Annex V and Art. 153 confirmed; Annex III values and the "
+                    "15 min sustain time of Art. 156(9)-(11) from memory",
+            # Art. 156(9)-(11): limited energy reservoirs keep full activation available for
+            # 15-30 min as the area's operators determine; CE: 15 min (memory)
+            min_sustain_minutes=15.0),
     RuleSet("great-britain", "Great Britain synchronous area",
             max_settled_deviation_hz=0.5,  # Annex III Table 1 (memory)
             full_activation_deviation_hz=0.5,  # Annex V (confirmed)
@@ -64,7 +70,8 @@ RULE_SETS: dict[str, RuleSet] = {r.name: r for r in (
 )}
 
 # case.toml keys a rule set fills when the case does not give them
-FILLS = ("max_settled_deviation_hz", "full_activation_deviation_hz", "max_nadir_deviation_hz")
+FILLS = ("max_settled_deviation_hz", "full_activation_deviation_hz", "max_nadir_deviation_hz",
+         "min_sustain_minutes")
 
 
 def fill_limits(settings: dict) -> str | None:
@@ -77,7 +84,8 @@ def fill_limits(settings: dict) -> str | None:
     if rule is None:
         return (f"unknown rule set {name!r}; known: " + ", ".join(sorted(RULE_SETS)))
     for key in FILLS:
-        settings.setdefault(f"limits.{key}", getattr(rule, key))
+        if getattr(rule, key) is not None:  # a value the set does not record is not filled
+            settings.setdefault(f"limits.{key}", getattr(rule, key))
     return None
 
 

@@ -45,6 +45,8 @@ _TOML_SCHEMA: dict[str, dict[str, Key]] = {
         "max_nadir_deviation_hz": _HZ_DEV,
         "max_rocof_hz_per_s": Key("num", 0.0, 100.0, lo_open=True),
         "rules": Key("str"),  # a regulatory parameter set (rules.py) filling the limits not given
+        # energy-limited providers (case/products.py): full activation sustained this long
+        "min_sustain_minutes": Key("num", 0.0, 1440.0, lo_open=True),
     },
     "droop": {"steps_pct": Key("numlist", DROOP_MIN_PCT, DROOP_MAX_PCT),
               "change_penalty_per_unit": Key("num", 0.0, PRICE_MAX),

@@ -69,6 +69,11 @@ def build_parser() -> argparse.ArgumentParser:
                    "(one droop for every capable unit; droop_now_pct where given), list the "
                    "limits it breaks and the saving of the optimum; with --out writes "
                    "comparison.csv, comparison.json and uniform_allocation.csv")
+    s.add_argument("--price-step", type=float, metavar="MW", help="growth of each event (and "
+                   "own-reserve requirement) for its incremental cost (default max(1 MW, 1 %% "
+                   "of its size))")
+    s.add_argument("--no-incremental", action="store_true", help="skip the re-solves behind "
+                   "incremental_cost_per_mw_h (faster; only the fixed-step marginal prices)")
     s.set_defaults(func=cmd_solve)
 
     g = sub.add_parser("generate", help="write a synthetic day-ahead case",

@@ -80,11 +80,18 @@ def cmd_solve(args) -> int:
         print("error: --report needs --out DIR (the report is written next to the results)",
               file=sys.stderr)
         return EXIT_INPUT
+    step = getattr(args, "price_step", None)
+    if step is not None and not (step > 0 and step < float("inf")):
+        print(f"error: --price-step must be a positive number of MW, got {step:g}",
+              file=sys.stderr)
+        return EXIT_INPUT
     case = load_case(args.case)
     _warn(case, args.quiet, getattr(args, "strict", False))
     try:
         result = solve(case, engine=args.engine, time_limit=args.time_limit,
-                       mip_gap=args.mip_gap, relax=args.relax, verbose=args.verbose)
+                       mip_gap=args.mip_gap, relax=args.relax, verbose=args.verbose,
+                       incremental=not (getattr(args, "no_incremental", False) or args.relax),
+                       price_step=getattr(args, "price_step", None))
     except InfeasibleError as exc:
         if out_dir is not None and exc.diagnosis is not None:
             _write_diagnosis(exc, out_dir, args.force)
@@ -160,16 +167,20 @@ def _print_result(result: Result, out_dir: Path | None) -> None:
         ev = ev.loc[ev.groupby("event", sort=False)["margin_hz"].idxmin()]
         print("per event, the period with the least margin:")
     rows = []
+    inc = "incremental_cost_per_mw_h" in ev.columns
     for r in ev.itertuples():
         price = r.marginal_cost_per_mw_h
         rows.append([str(r.event)] + ([str(r.period)] if horizon else []) + [
             str(r.kind), f"{r.size_mw:.1f}", f"{r.settled_frequency_hz:.4f}",
             f"{r.settled_deviation_hz * 1000:+.1f}", f"{r.margin_hz * 1000:.1f}",
-            "yes" if r.binding else "", "" if price != price else f"{price:.3f}"])
+            "yes" if r.binding else "", "n/a" if price != price else f"{price:.3f}"]
+            + ([_price_text(r.incremental_cost_per_mw_h)] if inc else []))
     head = ["event"] + (["period"] if horizon else []) + [
-        "kind", "size MW", "settles Hz", "dev mHz", "margin mHz", "binding", "price /MW/h"]
+        "kind", "size MW", "settles Hz", "dev mHz", "margin mHz", "binding", "marginal /MW/h"
+    ] + (["incremental /MW/h"] if inc else [])
     off = 1 if horizon else 0
-    print(_table(head, rows, {k + off for k in (2, 3, 4, 5, 7)}))
+    print(_table(head, rows, {k + off for k in (2, 3, 4, 5, 7, 8)}))
+    print(_price_legend(ev, inc))
     bl = result.binding_links
     if len(bl):
         shown = [f"{r.link} after {r.event}" + (f" in {r.period}" if horizon else "")
@@ -191,6 +202,22 @@ def _print_result(result: Result, out_dir: Path | None) -> None:
             f" {name}" for name in result.extra_files)
         print(f"wrote {out_dir}: allocation.csv events.csv links.csv{extra} summary.json")
     print(CAUTION)
+
+
+def _price_text(v: float) -> str:
+    return "n/a" if v != v else ("no allocation" if v == float("inf") else f"{v:.3f}")
+
+
+def _price_legend(ev, inc: bool) -> str:
+    """Which price is which (docs/formulation.md, "Two prices on droop-step cases")."""
+    text = ("marginal: dual of the event's rows with every participation and droop step held "
+            "(one more MW at today's steps)")
+    if ev["marginal_cost_per_mw_h"].isna().any():
+        text += "; n/a: no row of that event is tight, so the dual says nothing"
+    if inc:
+        text += ("; incremental: cost of a larger event (+price step) with steps re-optimised, "
+                 "per MW and hour")
+    return text
 
 
 # ------------------------------------------------------------------ generate

@@ -15,7 +15,8 @@ import numpy as np
 
 from optreserve.case.data import Case
 from optreserve.model.flows import _rows_dispatch, _rows_flows, _rows_flows_dispatch
-from optreserve.model.horizon import ELASTIC_PENALTY, Events, Horizon, _removed, prepare
+from optreserve.model.horizon import (ELASTIC_PENALTY, Events, Horizon, _removed, direction_key,
+                                      prepare, responds)
 from optreserve.model.nadir import _rows_nadir
 from optreserve.model.program import LinearProgram
 
@@ -32,7 +33,7 @@ class ModelInfo:
     x_hat: np.ndarray  # per instance: settled |df| guess used for dead-band-reduced gains
     classes: np.ndarray  # dead-band values [Hz] of the aggregate classes
     unit_class: np.ndarray
-    group_of_t: np.ndarray  # (T,) aggregate group of each period
+    group_of_t: np.ndarray  # (2T,) aggregate group of each period, up (t) and down (T + t)
     steps_gain: np.ndarray | None  # per step-choice column: gain [MW/Hz]
     steps_unit: np.ndarray | None  # per step-choice column: unit index
     steps_block: np.ndarray | None
@@ -62,8 +63,12 @@ def build_model(case: Case, x_hat: np.ndarray | None = None, elastic: bool = Fal
     # dead-band classes: units sharing a dead band share an aggregate per area
     classes, unit_class = np.unique(np.round(hz.d_hz, 12), return_inverse=True)
     n_k = len(classes)
-    # aggregate groups: periods with the same droop block and the same available units
-    sig = np.concatenate([hz.block[:, None], hz.avail.astype(np.int64)], axis=1)
+    # aggregate groups: periods and directions with the same droop block and the same
+    # responding units (up in rows t, down in rows T + t; one group when both agree)
+    resp_up, resp_dn = responds(hz)
+    resp2 = np.concatenate([resp_up, resp_dn])
+    block2 = np.r_[hz.block, hz.block]
+    sig = np.concatenate([block2[:, None], resp2.astype(np.int64)], axis=1)
     _, first, group_of_t = np.unique(sig, axis=0, return_index=True, return_inverse=True)
     group_of_t = group_of_t.reshape(-1)
 
@@ -80,19 +85,19 @@ def build_model(case: Case, x_hat: np.ndarray | None = None, elastic: bool = Fal
         zb, zu, zk = np.nonzero(ok)
         Z = lp.add_vars("z", len(zu), 0.0, 1.0, integer=not relax)
         st = (g[zu, zk], zu, zb, s[zk])
-        _rows_steps(lp, K, Z, zb * N + zu, g[zu, zk], B * N)
+        _rows_steps(lp, K, Z, zb * N + zu, g[zu, zk], B * N, _always(hz, ok.any(axis=2)))
         part_cols, part_of = Z.idx(), zb * N + zu
     else:
-        U = lp.add_vars("u", B * N, 0.0, hz.capable_b.reshape(-1).astype(float),
-                        integer=not relax)
+        U = lp.add_vars("u", B * N, _always(hz, hz.capable_b).reshape(-1).astype(float),
+                        hz.capable_b.reshape(-1).astype(float), integer=not relax)
         _rows_band(lp, K, U, np.tile(hz.K_lo, B), hz.K_hi_b.reshape(-1))
         part_cols, part_of = U.idx(), np.arange(B * N)
 
     # a tiny tie-break price on headroom: free providers report the headroom their droop needs,
     # not an arbitrary amount up to their room (the reported cost uses the real prices)
     eps = TIE_BREAK_PER_MW_H
-    hold_up = hz.avail & (hz.need_up[:, None] | (hz.own[:, hz.area] > 0))
-    hold_dn = hz.avail & hz.need_dn[:, None]
+    hold_up = resp_up & (hz.need_up[:, None] | (hz.own[:, hz.area] > 0))
+    hold_dn = resp_dn & hz.need_dn[:, None]
     r_up = lp.add_vars("r_up", T * N, 0.0, np.where(hold_up, hz.R_up, 0.0).reshape(-1),
                        cost=((hz.price_up + eps) * hz.hours[:, None]).reshape(-1))
     r_dn = lp.add_vars("r_dn", T * N, 0.0, np.where(hold_dn, hz.R_dn, 0.0).reshape(-1),
@@ -101,10 +106,10 @@ def build_model(case: Case, x_hat: np.ndarray | None = None, elastic: bool = Fal
     G = lp.add_vars("G", n_g * n_a * n_k, 0.0, np.inf)
 
     P = _rows_dispatch(lp, hz, r_up, r_dn, elastic) if hz.co_opt else None
-    _rows_aggregate(lp, hz, K, G, first, unit_class, n_a, n_k)
-    tt, ii = np.nonzero(hz.avail & hz.need_up[:, None])
+    _rows_aggregate(lp, hz, K, G, first, unit_class, n_a, n_k, resp2, block2)
+    tt, ii = np.nonzero(resp_up & hz.need_up[:, None])
     _rows_headroom(lp, "headroom_up", hz, K, r_up, tt, ii)
-    tt, ii = np.nonzero(hz.avail & hz.need_dn[:, None])
+    tt, ii = np.nonzero(resp_dn & hz.need_dn[:, None])
     _rows_headroom(lp, "headroom_dn", hz, K, r_dn, tt, ii)
     if (hz.own > 0).any():
         _rows_own_reserve(lp, hz, r_up, part_cols, part_of, elastic)
@@ -134,20 +139,32 @@ def _rows_band(lp, K, U, K_lo, K_hi):
                 lo=0.0)
 
 
-def _rows_steps(lp, K, Z, z_of, zg, n):
-    """K = sum_k g_k z_k and sum_k z_k <= 1 per (block, unit): one setting, or off."""
+def _rows_steps(lp, K, Z, z_of, zg, n, always=None):
+    """K = sum_k g_k z_k and sum_k z_k <= 1 per (block, unit): one setting, or off; exactly
+    one setting for an always-on governor (`always`, flat (block, unit) mask)."""
     lp.add_rows("step_gain", n, np.r_[np.arange(n), z_of], np.r_[K.idx(), Z.idx()],
                 np.r_[np.ones(n), -zg], lo=0.0, hi=0.0)
-    lp.add_rows("step_one", n, z_of, Z.idx(), np.ones(len(z_of)), hi=1.0)
+    lo = -np.inf if always is None or not always.any() else np.where(always.reshape(-1), 1.0,
+                                                                   -np.inf)
+    lp.add_rows("step_one", n, z_of, Z.idx(), np.ones(len(z_of)), lo=lo, hi=1.0)
 
 
-def _rows_aggregate(lp, hz: Horizon, K, G, first, unit_class, n_a, n_k):
-    """G_gak - sum K_bi over units i available in group g, in area a, dead-band class k = 0:
-    settled and flow rows then see a few aggregates instead of every unit."""
+def _always(hz: Horizon, possible: np.ndarray) -> np.ndarray:
+    """(B, N) governors on by obligation (`provides = always`) where a setting is possible:
+    their participation is fixed on (the droop is still chosen)."""
+    if hz.always_b is None:
+        return np.zeros_like(possible, dtype=bool)
+    return hz.always_b & possible
+
+
+def _rows_aggregate(lp, hz: Horizon, K, G, first, unit_class, n_a, n_k, resp2, block2):
+    """G_gak - sum K_bi over units i responding in group g (a period and direction), in area
+    a, dead-band class k = 0: settled and flow rows then see a few aggregates instead of
+    every unit."""
     N = hz.N
     n_g = len(first)
-    gg, ii = np.nonzero(hz.avail[first])  # members of each group
-    b = hz.block[first][gg]
+    gg, ii = np.nonzero(resp2[first])  # members of each group
+    b = block2[first][gg]
     n_rows = n_g * n_a * n_k
     row_of = gg * n_a * n_k + hz.area[ii] * n_k + unit_class[ii]
     lp.add_rows("aggregate", n_rows, np.r_[np.arange(n_rows), row_of],
@@ -196,7 +213,7 @@ def _rows_settled(lp, hz: Horizon, K, G, ginfo, F_m, elastic, P=None):
     group_of_t, n_a, n_k, classes = ginfo
     M, N = len(hz.dP), hz.N
     w = np.tile(np.maximum(F_m - classes, 0.0), n_a)  # per (a, k)
-    g = group_of_t[hz.inst_t]
+    g = group_of_t[direction_key(hz)]
     rows = np.repeat(np.arange(M), n_a * n_k)
     cols = G.idx((g[:, None] * n_a * n_k + np.arange(n_a * n_k)[None, :]).reshape(-1))
     vals = np.tile(w, M)

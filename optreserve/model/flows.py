@@ -5,7 +5,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from optreserve.model.horizon import ELASTIC_PENALTY, Horizon, _removed, effective_factor
+from optreserve.model.horizon import (ELASTIC_PENALTY, Horizon, _removed, direction_key,
+                                      effective_factor)
 
 
 def flow_weights(hz: Horizon, inst=None):
@@ -29,7 +30,7 @@ def _response_terms(hz: Horizon, K, G, ginfo, x_hat, live):
     providers out of each instance (tripped or absent) with their factor and gain column."""
     group_of_t, n_a, n_k, classes = ginfo
     c = effective_factor(classes, x_hat[live])  # (E', K)
-    g = group_of_t[hz.inst_t[live]]
+    g = group_of_t[direction_key(hz, live)]
     gcols = G.idx((g[:, None] * n_a * n_k + np.arange(n_a * n_k)[None, :]))  # (E', A*K)
     te_abs, j = _removed(hz, live)
     te = np.searchsorted(live, te_abs)

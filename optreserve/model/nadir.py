@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 
 from optreserve.case.data import Case
-from optreserve.model.horizon import ELASTIC_PENALTY, Horizon
+from optreserve.model.horizon import ELASTIC_PENALTY, Horizon, out_pairs, responds_in
 
 # Nadir rows: time points per event (fewer for long horizons to keep the model small) and
 # the governor model shared with the simulator: a first-order lag of time constant
@@ -64,9 +64,8 @@ def nadir_shortfall(case: Case, hz: Horizon, r_up, r_dn, scale=None) -> np.ndarr
     coef, need = nadir_terms(case, hz, scale)
     r = np.where((hz.sigma > 0)[:, None], np.asarray(r_up)[hz.inst_t],
                  np.asarray(r_dn)[hz.inst_t])
-    for arr in (hz.trip, hz.absent):
-        m = np.nonzero(arr >= 0)[0]
-        r[m, arr[m]] = 0.0
+    m, j = out_pairs(hz)  # every lost unit (all of a common-mode trip) and any absent one
+    r[m, j] = 0.0
     have = np.einsum("mkn,mn->mk", coef, r)
     return (need - have).max(axis=1)
 
@@ -77,10 +76,9 @@ def _rows_nadir(lp, case, hz: Horizon, r_up, r_dn, elastic, scale=None):
     N, M = hz.N, len(hz.dP)
     coef, need = nadir_terms(case, hz, scale)
     K = coef.shape[1]
-    live = hz.avail[hz.inst_t].copy()  # (M, N)
-    for arr in (hz.trip, hz.absent):
-        m = np.nonzero(arr >= 0)[0]
-        live[m, arr[m]] = False
+    live = responds_in(hz).copy()  # (M, N) who responds in each instance's direction
+    m, j = out_pairs(hz)
+    live[m, j] = False
     mm, ii = np.nonzero(live)
     kk = np.arange(K)
     rows = (mm[:, None] * K + kk[None, :]).reshape(-1)

@@ -26,7 +26,7 @@ def _attach_prices(result: Result, lp: LinearProgram, info: ModelInfo, out: Outc
     if lp.is_mip:
         o = solve_highs(_fixed_lp(lp, out.x), want_duals=True)
     extra = (o.emit_time_s, o.solve_time_s) if o is not out else (0.0, 0.0)
-    result.prices = area_prices(info, lp, out.x, o.row_dual)
+    result.prices = area_prices(info, lp, out.x, o.row_dual, o.x)
     if o.row_dual is None:
         return extra
     hz = info.hz
@@ -57,6 +57,11 @@ def _attach_prices(result: Result, lp: LinearProgram, info: ModelInfo, out: Outc
                                              / hz.Fmax[t]).sum(axis=1), 0.0)
     price = price / hz.hours[hz.inst_t]
     price[hz.dP == 0] = 0.0
+    if lp.is_mip and info.steps_gain is not None:
+        # droop steps held: a slack event's dual of 0 says nothing (steps overshoot): blank
+        from optreserve.solver.incremental import tight_events
+
+        price[(hz.dP > 0) & ~tight_events(lp, info, o.x)] = np.nan
     result.set_event_prices(np.where(np.abs(price) < 1e-9, 0.0, price))
     if hz.co_opt:
         result.extra_files["energy_prices.csv"] = energy_prices(info, lp, y)
@@ -101,10 +106,12 @@ ROOM_TOL_MW = 1e-6
 
 
 def area_prices(info: ModelInfo, lp: LinearProgram, x: np.ndarray,
-                row_dual: np.ndarray | None) -> pd.DataFrame:
+                row_dual: np.ndarray | None, fixed_x: np.ndarray | None = None
+                ) -> pd.DataFrame:
     """Per area (and period) prices for analysts (docs/formulation.md, "Prices for analysts"):
       reserve_price_per_mw_h: dual of the area's own-reserve row / h_t (the re-optimised cost
-        of one more MW of requirement, integers fixed); 0 where the area has no requirement;
+        of one more MW of requirement, integers fixed); 0 where the area has no requirement; blank (NaN)
+        on a mixed-integer case where the requirement is not tight (its dual says nothing);
       next_mw_up_cost_per_mw_h, next_mw_up_unit: the cheapest provider of the area that takes
         part in that period and has up room left, i.e. the cost per hour of holding one more MW
         of up headroom in the area with every gain and all other headroom unchanged (empty:
@@ -115,6 +122,12 @@ def area_prices(info: ModelInfo, lp: LinearProgram, x: np.ndarray,
     if row_dual is not None and "own_reserve" in lp.row_blocks:
         ta, aa = np.nonzero(hz.own > 0)
         reserve[ta, aa] = row_dual[lp.row_blocks["own_reserve"].slice] / hz.hours[ta]
+        if lp.is_mip and info.steps_gain is not None and fixed_x is not None:
+            # droop steps held: a slack requirement's dual says nothing: blank
+            from optreserve.solver.incremental import tight_rows
+
+            slack = ~tight_rows(lp, fixed_x, "own_reserve")
+            reserve[ta[slack], aa[slack]] = np.nan
     gain, r_up, _ = period_values(lp, info, x)
     price = np.where((gain > 0) & (hz.R_up - r_up > ROOM_TOL_MW), hz.price_up, np.inf)  # (T, N)
     best = np.full((T, A), np.inf)

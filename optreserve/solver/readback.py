@@ -8,7 +8,8 @@ import numpy as np
 from optreserve.case.data import Case
 from optreserve.errors import VerificationError
 from optreserve.model.build import ModelInfo
-from optreserve.model.horizon import Horizon, effective_factor
+from optreserve.model.horizon import (Horizon, direction_key, effective_factor, lost_pairs,
+                                      out_pairs, responds, responds_in)
 from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
 from optreserve.solver.backends import Outcome
@@ -53,8 +54,11 @@ def period_values(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
     # the solver may leave headroom a hair (its feasibility tolerance) below what the droop
     # needs at full activation: report the rule's value, not the round-off
     need = gain * hz.a_act[None, :]
-    r_up = np.where(hz.need_up[:, None] & (need - r_up > 0) & (need - r_up < 1e-5), need, r_up)
-    r_dn = np.where(hz.need_dn[:, None] & (need - r_dn > 0) & (need - r_dn < 1e-5), need, r_dn)
+    up, dn = responds(hz)
+    r_up = np.where(hz.need_up[:, None] & up & (need - r_up > 0) & (need - r_up < 1e-5), need,
+                    r_up)
+    r_dn = np.where(hz.need_dn[:, None] & dn & (need - r_dn > 0) & (need - r_dn < 1e-5), need,
+                    r_dn)
     return gain, np.where(r_up > 1e-9, r_up, 0.0), np.where(r_dn > 1e-9, r_dn, 0.0)
 
 
@@ -71,7 +75,8 @@ def evaluate_allocation(case: Case, hz: Horizon, gain, r_up, r_dn) -> BatchPoint
         hz.dP, hz.sigma, hz.inst_t, hz.inst_area, hz.trip, gain, r_up, r_dn, hz.d_hz, hz.area,
         hz.D_a, hz.F0, [apos[a] for a in case.links["from_area"]],
         [apos[a] for a in case.links["to_area"]],
-        case.link_matrix("reactance_pu").astype(float), absent=hz.absent)
+        case.link_matrix("reactance_pu").astype(float), absent=hz.absent,
+        respond=responds(hz), lost=lost_pairs(hz))
 
 
 def model_beta(lp: LinearProgram, info: ModelInfo, x: np.ndarray) -> np.ndarray:
@@ -83,15 +88,14 @@ def model_beta(lp: LinearProgram, info: ModelInfo, x: np.ndarray) -> np.ndarray:
     G = lp.value(x, "G").reshape(-1, n_a, n_k)
     t = hz.inst_t
     c = effective_factor(info.classes, info.x_hat)  # (M, K)
-    beta = (G[info.group_of_t[t]] * c[:, None, :]).sum(axis=2) + hz.D_a[t]  # (M, A)
-    for arr in (hz.trip, hz.absent):  # providers that respond in the period but not here
-        m = np.nonzero(arr >= 0)[0]
-        j = arr[m]
-        m, j = m[hz.avail[t[m], j]], j[hz.avail[t[m], j]]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            cj = np.clip(1.0 - hz.d_hz[j] / np.where(info.x_hat[m] > 0, info.x_hat[m], np.inf),
-                         0.0, 1.0)
-        np.subtract.at(beta, (m, hz.area[j]), cj * K[hz.block[t[m]] * hz.N + j])
+    beta = (G[info.group_of_t[direction_key(hz)]] * c[:, None, :]).sum(axis=2) + hz.D_a[t]
+    resp = responds_in(hz)  # (M, N)
+    m, j = out_pairs(hz)  # providers that respond in the period but not here
+    m, j = m[resp[m, j]], j[resp[m, j]]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cj = np.clip(1.0 - hz.d_hz[j] / np.where(info.x_hat[m] > 0, info.x_hat[m], np.inf),
+                     0.0, 1.0)
+    np.subtract.at(beta, (m, hz.area[j]), cj * K[hz.block[t[m]] * hz.N + j])
     return beta
 
 

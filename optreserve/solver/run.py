@@ -4,6 +4,7 @@ independently, read prices, and return a Result of pandas tables."""
 from __future__ import annotations
 
 import time
+from dataclasses import replace
 from typing import Callable
 
 import numpy as np
@@ -12,7 +13,7 @@ from optreserve import progress
 from optreserve.case.data import Case
 from optreserve.errors import SolverError
 from optreserve.model.build import ModelInfo, build_model
-from optreserve.model.horizon import Horizon, prepare
+from optreserve.model.horizon import Horizon, lost_pairs, prepare
 from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
 from optreserve.solver.backends import Outcome, solve_program
@@ -30,7 +31,8 @@ FIXED_POINT_MAX_ITER = 30
 def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
           mip_gap: float | None = None, relax: bool = False, verbose: bool = False,
           extend: Callable[[LinearProgram, ModelInfo], None] | None = None,
-          hz: Horizon | None = None) -> Result:
+          hz: Horizon | None = None, incremental: bool = False,
+          price_step: float | None = None) -> Result:
     """Least-cost droop and headroom allocation meeting every event's limits.
 
     engine: "pyomo" (Pyomo model on Pyomo's HiGHS interface), "highspy" (bulk load), or
@@ -38,6 +40,9 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     extend: called on every model built (lp, info) to add blocks or change the objective
       (studies such as retune proposals); the result's cost is always the headroom cost.
     hz: the stacked case (model.prepare), e.g. with extra event instances.
+    incremental: also re-solve once per event instance (and own-reserve requirement) grown
+      by price_step MW (default max(1 MW, 1 %)) for incremental prices (solver/incremental.py;
+      not with extend, whose objective is not the cost).
     Raises InfeasibleError (with a diagnosis) when no allocation meets the limits."""
     t_start = time.perf_counter()
     time_limit = time_limit if time_limit is not None else case.solver.time_limit_s
@@ -136,6 +141,13 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     t_price = _attach_prices(result, lp, info, out)
     t_build += t_price[0]
     t_solve += t_price[1]
+    if incremental and extend is None and not relax:
+        from optreserve.solver.incremental import attach_incremental
+
+        t_inc = attach_incremental(result, case, hz, info, out.x, price_step, time_limit,
+                                   nadir["scale"])
+        t_build += t_inc[0]
+        t_solve += t_inc[1]
     result.timings_s.update(read=case.read_time_s, build=t_build, solve=t_solve, write=0.0,
                             total=time.perf_counter() - t_start + case.read_time_s)
     return result
@@ -169,14 +181,24 @@ def _nadir_round(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
     gain, r_up, r_dn = period_values(lp, info, out.x)
     worst = np.zeros(len(hz.dP))
     systems = {}
+    lm, lj = lost_pairs(hz)
     for m in live:
         t = int(hz.inst_t[m])
         g = gain[t].copy()
         if hz.absent[m] >= 0:
             g[hz.absent[m]] = 0.0
-        key = (t, int(hz.absent[m]))
+        # a common-mode trip: the simulator takes one tripped unit; the others lose their
+        # response and stored energy here
+        extra = lj[(lm == m) & (lj != hz.trip[m])]
+        g[extra] = 0.0
+        key = (t, int(hz.absent[m]), tuple(extra))
         if key not in systems:
-            systems[key] = build_system(case, g, r_up[t], r_dn[t], t=t)
+            sysm = build_system(case, g, r_up[t], r_dn[t], t=t)
+            if len(extra):
+                H = sysm.stored_energy_mw_s.copy()
+                H[extra] = 0.0
+                sysm = replace(sysm, stored_energy_mw_s=H)
+            systems[key] = sysm
         tr = simulate_event(systems[key], float(hz.sigma[m] * hz.dP[m]), int(hz.inst_area[m]),
                             trip=int(hz.trip[m]), duration_s=30.0)
         worst[m] = abs(tr.nadir_hz - case.nominal_frequency_hz)

@@ -7,6 +7,7 @@ import numpy as np
 import pandas as pd
 
 from optreserve.case.data import Case
+from optreserve.case.products import trip_members
 from optreserve.model.horizon import Events, unit_data
 
 
@@ -42,7 +43,7 @@ def _snapshot(case: Case) -> pd.DataFrame:
         K_max = np.where(ok, g, 0.0).max(axis=1)
     resp = K_max * np.maximum(F - ud.d_hz, 0.0)  # MW each unit can give at the limit
     total = resp.sum()
-    offered = np.array([total - (resp[j] if j >= 0 else 0.0) for j in ev.trip]) + F * D
+    offered = total - trip_members(case.units, case.events) @ resp + F * D  # all lost units out
     return pd.DataFrame({
         "event": ev.names,
         "size_mw": case.events["size_mw"].to_numpy(float),

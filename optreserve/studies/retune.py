@@ -13,11 +13,12 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
+import scipy.sparse as sp
 
 from optreserve.case.data import Case, DroopSettings
 from optreserve.errors import CaseError, OptreserveError, Problem
 from optreserve.model.build import TIE_BREAK_PER_MW_H, ModelInfo
-from optreserve.model.horizon import Horizon, prepare
+from optreserve.model.horizon import Horizon, lost_pairs, prepare
 from optreserve.model.nadir import nadir_shortfall
 from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
@@ -148,7 +149,7 @@ def with_provider_loss(case: Case, hz: Horizon) -> Horizon:
     """Every event instance again with each responding provider unavailable in turn."""
     M = len(hz.dP)
     cand = hz.capable_b[hz.block[hz.inst_t]]  # (M, N) providers that could respond
-    cand[np.arange(M)[hz.trip >= 0], hz.trip[hz.trip >= 0]] = False
+    cand[lost_pairs(hz)] = False  # every lost unit (all of a common-mode trip)
     mm, jj = np.nonzero(cand)
     names = np.array(hz.inst_name, dtype=object)
     units = case.units["unit"].to_numpy(object)
@@ -159,7 +160,8 @@ def with_provider_loss(case: Case, hz: Horizon) -> Horizon:
         dP=cat([hz.dP, hz.dP[mm]]), sigma=cat([hz.sigma, hz.sigma[mm]]),
         inst_area=cat([hz.inst_area, hz.inst_area[mm]]), trip=cat([hz.trip, hz.trip[mm]]),
         absent=cat([hz.absent, jj]), inst_event=cat([hz.inst_event, hz.inst_event[mm]]),
-        H_sys=cat([hz.H_sys, hz.H_sys[mm]]))
+        H_sys=cat([hz.H_sys, hz.H_sys[mm]]),
+        lost=None if hz.lost is None else sp.vstack([hz.lost, hz.lost[mm]]).tocsr())
 
 
 @dataclass

@@ -193,12 +193,16 @@ def _row_of(result) -> dict:
     s = result.summary
     ev = result.events
     prices = ev.groupby("event", sort=False)["marginal_cost_per_mw_h"].max()
+    inc = (ev.groupby("event", sort=False)["incremental_cost_per_mw_h"].max()
+           if "incremental_cost_per_mw_h" in ev.columns else {})
     row = {"status": s["status"], "objective_per_h": s["objective_per_h"],
            "objective_total": s["objective_total"],
            "change_penalty": s["change_penalty"],
            "binding_events": ";".join(s["binding_events"]),
            "binding_links": ";".join(s["binding_links"]), "error": ""}
-    row.update({f"price_per_mw_h:{e}": float(p) for e, p in prices.items()})
+    # which price is which: the fixed-step dual, and the re-solved cost of a larger event
+    row.update({f"marginal_cost_per_mw_h:{e}": float(p) for e, p in prices.items()})
+    row.update({f"incremental_cost_per_mw_h:{e}": float(p) for e, p in inc.items()})
     return row
 
 
@@ -212,7 +216,10 @@ def _attempt(make_case, engine: str) -> dict:
     from optreserve.solver.run import solve
 
     try:
-        return _row_of(solve(make_case(), engine=engine))
+        case = make_case()  # droop steps: marginal prices are mostly blank; re-solve for
+        # incremental ones (the points run in parallel already)
+        return _row_of(solve(case, engine=engine,
+                             incremental=case.droop.steps_pct is not None))
     except InfeasibleError as exc:
         return _failed("infeasible", exc.shortfalls[0] if exc.shortfalls else str(exc))
     except Exception as exc:  # one bad point must not stop a long study
@@ -335,7 +342,8 @@ def _table(rows: list[dict], keys: list[str]) -> pd.DataFrame:
     df = pd.DataFrame(rows)
     lead = ["point", *keys, "status", "objective_per_h", "objective_total", "change_penalty",
             "binding_events", "binding_links"]
-    prices = sorted(c for c in df.columns if c.startswith("price_per_mw_h:"))
+    prices = sorted(c for c in df.columns if c.startswith(("marginal_cost_per_mw_h:",
+                                                           "incremental_cost_per_mw_h:")))
     df = df[lead + prices + ["error", "solve_s"]]
     for c in ("objective_per_h", "objective_total", "change_penalty", "solve_s", *prices):
         df[c] = pd.to_numeric(df[c], errors="coerce").astype(float)

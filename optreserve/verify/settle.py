@@ -160,11 +160,16 @@ class BatchPoints:
 
 
 def settle_instances(dP, sigma, t, area_e, trip, gain, r_up, r_dn, d_hz, unit_area, D_a,
-                     F0, from_idx, to_idx, reactance, absent=None) -> BatchPoints:
+                     F0, from_idx, to_idx, reactance, absent=None, respond=None, lost=None
+                     ) -> BatchPoints:
     """Settled points of M event instances: instance m happens in period t[m] with per-period
     gains and headroom (T, N), per-period load self-regulation D_a (T, A), pre-event flows
     F0 (T, L) and reactances (T, L); trip[m] is the tripped unit or -1; absent[m] a unit that
-    gives no response in instance m (its output is not lost) or -1."""
+    gives no response in instance m (its output is not lost) or -1; respond = (up, dn), each
+    (T, N) bool, the directions each unit responds in (`provides = up | down`, or a unit with
+    no room that way): in a blocked direction a unit gives no response (default: both);
+    lost = (instances, units) pairs of every unit an instance loses (a common-mode trip loses
+    several; default: trip alone). The lost output is dP itself; the lost units respond not."""
     M = len(dP)
     gain = np.asarray(gain, float)
     # only units that respond in some period matter; the rest would only cost time
@@ -172,9 +177,17 @@ def settle_instances(dP, sigma, t, area_e, trip, gain, r_up, r_dn, d_hz, unit_ar
     col_of = np.full(gain.shape[1], -1)
     col_of[live] = np.arange(len(live))
     K = gain[t][:, live]
+    if respond is not None:  # a blocked direction gives no response
+        ok = np.where((sigma > 0)[:, None], np.asarray(respond[0], bool)[t],
+                      np.asarray(respond[1], bool)[t])
+        K = np.where(ok[:, live], K, 0.0)
     for out in (trip, absent if absent is not None else np.full(M, -1)):
         tr = np.nonzero((out >= 0) & (col_of[np.maximum(out, 0)] >= 0))[0]
         K[tr, col_of[out[tr]]] = 0.0
+    if lost is not None:
+        lm, lj = (np.asarray(a, dtype=np.int64) for a in lost)
+        keep = col_of[lj] >= 0
+        K[lm[keep], col_of[lj[keep]]] = 0.0
     r = np.where((sigma > 0)[:, None], np.asarray(r_up, float)[t][:, live],
                  np.asarray(r_dn, float)[t][:, live])
     d_hz = np.asarray(d_hz, float)[live]

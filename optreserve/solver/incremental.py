@@ -1,0 +1,241 @@
+"""Incremental prices: the change of the optimal cost when an event (or an area's own-reserve
+requirement) grows by a price step, from re-solving the mixed-integer problem, and which
+fixed-integer duals say nothing (docs/formulation.md, "Two prices on droop-step cases").
+
+On a case with droop steps the dual of an event's row with every step fixed is the cost of one
+more MW *at the chosen steps*; when the steps overshoot (the usual case) no row of the event
+is tight and that dual is 0 although a larger event costs real money. The incremental cost
+
+    (cost*(dP + step) - cost*(dP)) / step / h_t
+
+re-solves the whole problem, steps included, once per event instance (warm-started from the
+optimum). Both optima are taken at a tight gap and without the model's tie-break price on
+headroom, so that the difference is the change of the real cost (headroom cost plus any
+change penalty).
+"""
+
+from __future__ import annotations
+
+import time
+from copy import copy
+from dataclasses import replace
+
+import numpy as np
+
+from optreserve import progress
+from optreserve.model.build import ModelInfo, build_model
+from optreserve.model.horizon import Horizon
+from optreserve.model.program import LinearProgram
+from optreserve.solver.backends import solve_program
+
+# Default step: max(PRICE_STEP_MIN_MW, PRICE_STEP_SHARE x the event's size).
+PRICE_STEP_MIN_MW = 1.0
+
+
+PRICE_STEP_SHARE = 0.01
+
+
+# Relative MIP gap of the re-solves: far below the step's share of the cost, so the
+# difference of two optima is not lost in the gap.
+PRICE_MIP_GAP = 1e-9
+
+
+# Dead-band fixed point of a re-solve (cases with links and dead bands): a few passes from
+# the base solve's settled guesses.
+PRICE_FIXED_POINT_ITER = 10
+
+
+PRICE_FIXED_POINT_TOL_HZ = 1e-7
+
+
+# A row counts as tight within this relative distance of its bound.
+TIGHT_REL = 1e-6
+
+
+# Nadir rows of a grown event count as met within this (relative; HiGHS' own feasibility
+# tolerance is 1e-7).
+FEASIBLE_REL = 1e-6
+
+
+def price_steps(size_mw: np.ndarray, step_mw: float | None = None) -> np.ndarray:
+    """The step of each event (or requirement) of the given sizes [MW]."""
+    size = np.abs(np.asarray(size_mw, float))
+    if step_mw is not None:
+        if not (np.isfinite(step_mw) and step_mw > 0):
+            raise ValueError(f"the price step must be a positive number of MW, got {step_mw}")
+        return np.full(size.shape, float(step_mw))
+    return np.maximum(PRICE_STEP_MIN_MW, PRICE_STEP_SHARE * size)
+
+
+def tight_rows(lp: LinearProgram, x: np.ndarray, name: str) -> np.ndarray:
+    """Per row of a block: activity at one of its bounds (within TIGHT_REL)."""
+    b = lp.row_blocks[name].slice
+    act = lp.A[b] @ np.asarray(x)
+    lo, hi = lp.row_lo[b], lp.row_hi[b]
+    with np.errstate(invalid="ignore"):
+        at_lo = np.isfinite(lo) & (np.abs(act - lo) <= TIGHT_REL * np.maximum(1.0, np.abs(lo)))
+        at_hi = np.isfinite(hi) & (np.abs(act - hi) <= TIGHT_REL * np.maximum(1.0, np.abs(hi)))
+    return at_lo | at_hi
+
+
+def tight_events(lp: LinearProgram, info: ModelInfo, x: np.ndarray) -> np.ndarray:
+    """(M,) instances whose settled row or one of whose flow rows is tight at x: the rows
+    whose duals make the event's marginal cost. Where none is, that dual says nothing."""
+    hz = info.hz
+    M = len(hz.dP)
+    tight = tight_rows(lp, x, "settled").copy()
+    n_l = hz.F0.shape[1]
+    for names, live in ((("flow_hi", "flow_lo"), np.nonzero(hz.dP > 0)[0]),
+                        (("flow_x",), np.nonzero((hz.dP > 0) | ((hz.dP_var is not None)
+                                                               & (hz.dP_var >= 0)))[0])):
+        for name in names:
+            if name in lp.row_blocks and n_l:
+                t = tight_rows(lp, x, name).reshape(len(live), n_l).any(axis=1)
+                tight[live[t]] = True
+    return tight[:M]
+
+
+def _real_cost_program(lp: LinearProgram, hz: Horizon) -> LinearProgram:
+    """The same program costed at the real headroom prices (no tie-break)."""
+    out = copy(lp)
+    out._cost = list(lp._cost)
+    out.set_cost("r_up", (hz.price_up * hz.hours[:, None]).reshape(-1))
+    out.set_cost("r_dn", (hz.price_dn * hz.hours[:, None]).reshape(-1))
+    return out
+
+
+def optimal_cost(case, hz: Horizon, info: ModelInfo, start: np.ndarray | None,
+                 time_limit: float | None = None, nadir_scale=None
+                 ) -> tuple[float, np.ndarray | None, float]:
+    """Least real cost of the case stacked as hz (the dead-band fixed point re-run from the
+    base solve's guesses). Returns (cost, solution, solver seconds); cost NaN when no
+    allocation is found (inf when the problem is infeasible)."""
+    from optreserve.solver.readback import dispatch_view, exact_points
+    from optreserve.solver.run import _needs_fixed_point
+
+    x_hat = np.asarray(info.x_hat, float).copy()
+    solve_s = 0.0
+    out = None
+    for _ in range(PRICE_FIXED_POINT_ITER):
+        lp, inf = build_model(case, x_hat=x_hat, hz=hz, nadir_scale=nadir_scale)
+        lp = _real_cost_program(lp, hz)
+        st = start if start is not None and len(start) == lp.n_cols else None
+        out = solve_program(lp, engine="highspy", start=st, mip_gap=PRICE_MIP_GAP,
+                            time_limit=time_limit)
+        solve_s += out.solve_time_s
+        if out.status == "infeasible":
+            return float("inf"), None, solve_s
+        if out.x is None:
+            return float("nan"), None, solve_s
+        if not _needs_fixed_point(inf):
+            break
+        inf.hz = dispatch_view(inf.hz, lp, out.x)
+        exact = np.abs(exact_points(inf, lp, out.x).deviation_hz)
+        live = (inf.hz.dP > 0) & np.isfinite(exact)
+        if np.all(np.abs(exact - x_hat)[live] <= PRICE_FIXED_POINT_TOL_HZ):
+            break
+        x_hat = np.where(live, exact, x_hat)
+        start = out.x
+    return lp.objective(out.x), out.x, solve_s
+
+
+def event_still_met(case, hz: Horizon, info: ModelInfo, lp: LinearProgram, x: np.ndarray,
+                    m: int, nadir_scale=None) -> bool:
+    """Whether the allocation x (a solution of the base program lp) still meets instance m
+    of the case stacked as hz: its independently recalculated settled deviation and flows
+    (verify/settle.py) within the limits, and its nadir rows (model/nadir.py) held. The
+    other rows do not depend on the instance's size."""
+    from optreserve.model.horizon import out_pairs, responds_in
+    from optreserve.model.nadir import nadir_terms
+    from optreserve.solver.readback import evaluate_allocation, period_values
+
+    gain, r_up, r_dn = period_values(lp, info, x)
+    pts = evaluate_allocation(case, hz, gain, r_up, r_dn)
+    if not abs(pts.deviation_hz[m]) <= info.F_model:
+        return False
+    t = hz.inst_t[m]
+    if hz.F0.shape[1] and not np.all(np.abs(pts.flow_after_mw[m]) <= hz.Fmax[t]):
+        return False
+    if case.limits.max_nadir_deviation_hz is not None:
+        coef, need = nadir_terms(case, hz, nadir_scale)
+        live = responds_in(hz, [m])[0].copy()
+        _, jj = out_pairs(hz, np.array([m]))
+        live[jj] = False
+        K = lp.value(x, "K").reshape(hz.n_blocks, hz.N)[hz.block[t]]
+        reach = np.maximum(case.limits.max_nadir_deviation_hz - hz.d_hz, 0.0)
+        r = r_up[t] if hz.sigma[m] > 0 else r_dn[t]
+        q = np.where(live, np.minimum(r, K * reach), 0.0)
+        have = coef[m] @ q
+        if not np.all(have >= need[m] - FEASIBLE_REL * np.maximum(1.0, np.abs(need[m]))):
+            return False
+    return True
+
+
+def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
+                       step_mw: float | None = None, time_limit: float | None = None,
+                       nadir_scale=None):
+    """Incremental cost per MW and hour of each event instance and of each area's own-reserve
+    requirement (where it has one), by re-solving with that one quantity grown by its step.
+    Returns (event (M,), reserve (T, A), seconds spent solving, seconds in all); NaN where
+    not computed (a trip whose size is a dispatch decision, an area without requirement, a
+    re-solve without answer), inf where the grown problem has no allocation."""
+    t0 = time.perf_counter()
+    M = len(hz.dP)
+    T, A = hz.own.shape
+    event = np.full(M, np.nan)
+    reserve = np.full((T, A), np.nan)
+    progress.step("re-solving for incremental prices")
+    base, x0, solve_s = optimal_cost(case, hz, info, x, time_limit, nadir_scale)
+    if not np.isfinite(base):
+        return event, reserve, solve_s, time.perf_counter() - t0
+    fixed = hz.dP_var < 0 if hz.dP_var is not None else np.ones(M, bool)
+    # Every limit tightens as an event or requirement grows (the settled and nadir rows need
+    # more; at fixed gains a flow's shift grows in proportion), so the optimal cost does not
+    # fall: if the base optimum still meets the grown case, the grown optimum costs the same,
+    # 0, and no re-solve is run. (With dead bands on linked areas the responses' shares move
+    # with the deviation; that flows then still only tighten is assumed. Co-optimised
+    # outputs move the pre-event flows: always re-solved.)
+    shortcut = not hz.co_opt and x0 is not None
+    lp0, info0 = build_model(case, x_hat=info.x_hat, hz=hz, nadir_scale=nadir_scale)
+    steps = price_steps(hz.dP)
+    if step_mw is not None:
+        steps = price_steps(hz.dP, step_mw)
+    for m in np.nonzero((hz.dP > 0) & fixed)[0]:  # one re-solve per instance
+        dP = hz.dP.copy()
+        dP[m] += steps[m]
+        grown = replace(hz, dP=dP)
+        if shortcut and event_still_met(case, grown, info0, lp0, x0, m, nadir_scale):
+            event[m] = 0.0
+            continue
+        cost, _, s = optimal_cost(case, grown, info, x0, time_limit, nadir_scale)
+        solve_s += s
+        event[m] = (cost - base) / steps[m] / hz.hours[hz.inst_t[m]]
+    ta, aa = np.nonzero(hz.own > 0)
+    r_steps = price_steps(hz.own[ta, aa], step_mw)
+    for k in range(len(ta)):
+        own = hz.own.copy()
+        own[ta[k], aa[k]] += r_steps[k]
+        grown = replace(hz, own=own)
+        held = lp0.value(x0, "r_up").reshape(hz.T, hz.N)[ta[k]][hz.area == aa[k]].sum()
+        if shortcut and held >= own[ta[k], aa[k]]:
+            reserve[ta[k], aa[k]] = 0.0
+            continue
+        cost, _, s = optimal_cost(case, grown, info, x0, time_limit, nadir_scale)
+        solve_s += s
+        reserve[ta[k], aa[k]] = (cost - base) / r_steps[k] / hz.hours[ta[k]]
+    clean = np.where(np.abs(event) < 1e-9, 0.0, event)
+    return clean, np.where(np.abs(reserve) < 1e-9, 0.0, reserve), solve_s, \
+        time.perf_counter() - t0
+
+
+def attach_incremental(result, case, hz: Horizon, info: ModelInfo, x: np.ndarray,
+                       step_mw: float | None = None, time_limit: float | None = None,
+                       nadir_scale=None):
+    """Add incremental_cost_per_mw_h to the result's events and
+    reserve_incremental_cost_per_mw_h to its prices; returns (build s, solve s)."""
+    event, reserve, solve_s, total_s = incremental_prices(case, hz, info, x, step_mw,
+                                                          time_limit, nadir_scale)
+    result.events["incremental_cost_per_mw_h"] = event
+    if result.prices is not None:
+        result.prices["reserve_incremental_cost_per_mw_h"] = reserve.reshape(-1)
+    return total_s - solve_s, solve_s
