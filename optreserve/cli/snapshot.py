@@ -12,7 +12,7 @@ from optreserve.cli.common import EXIT_INFEASIBLE, EXIT_INPUT, EXIT_OK, _paint, 
 from optreserve.errors import InfeasibleError
 from optreserve.output.results import CAUTION, Result, write_table
 from optreserve.output.staging import check_out, staged_output
-from optreserve.solver.screen import event_capability
+from optreserve.solver.screen import event_capability, screening_scope
 
 
 # ------------------------------------------------------------------ check
@@ -57,14 +57,14 @@ def cmd_check(args) -> int:
                      f"{r.offered_gain_mw_per_hz:.1f}",
                      "ok" if r.short_mw <= 0 else f"SHORT {r.short_mw:.1f} MW",
                      f"{ratio:.2f}"])
-    print(_table(["event", "size MW", "needs MW/Hz", "can offer MW/Hz", "", "ratio"], rows,
+    print(_table(["event", "size MW", "needs MW/Hz", "can offer MW/Hz", "status", "ratio"], rows,
                  {1, 2, 3, 5}))
     short = cap[cap["short_mw"] > 0]
     if len(short):
         print(f"{len(short)} event(s) cannot be met even with every provider at its highest "
               "gain", file=sys.stderr)
         return EXIT_INFEASIBLE
-    print("case is valid")
+    print("case is valid" + screening_scope(case))
     return EXIT_OK
 
 

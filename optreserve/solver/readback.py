@@ -12,7 +12,8 @@ from optreserve.model.horizon import Horizon, effective_factor
 from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
 from optreserve.solver.backends import Outcome
-from optreserve.verify.settle import BatchPoints, settle_instances
+from optreserve.verify.breaks import evaluate
+from optreserve.verify.settle import BatchPoints
 
 # An independent recalculation may differ from the optimiser's own figures by this much
 # before it counts as an error.
@@ -66,12 +67,7 @@ def exact_points(info: ModelInfo, lp: LinearProgram, x: np.ndarray) -> BatchPoin
 
 def evaluate_allocation(case: Case, hz: Horizon, gain, r_up, r_dn) -> BatchPoints:
     """Independent settled points of every instance for per-period gains and headroom."""
-    apos = {a: k for k, a in enumerate(case.areas["area"])}
-    return settle_instances(
-        hz.dP, hz.sigma, hz.inst_t, hz.inst_area, hz.trip, gain, r_up, r_dn, hz.d_hz, hz.area,
-        hz.D_a, hz.F0, [apos[a] for a in case.links["from_area"]],
-        [apos[a] for a in case.links["to_area"]],
-        case.link_matrix("reactance_pu").astype(float), absent=hz.absent)
+    return evaluate(case, hz, gain, r_up, r_dn)
 
 
 def model_beta(lp: LinearProgram, info: ModelInfo, x: np.ndarray) -> np.ndarray:
