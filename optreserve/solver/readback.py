@@ -13,6 +13,7 @@ from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
 from optreserve.solver.backends import Outcome
 from optreserve.verify.breaks import evaluate
+from optreserve.verify.roundoff import snap_up
 from optreserve.verify.settle import BatchPoints
 
 # An independent recalculation may differ from the optimiser's own figures by this much
@@ -52,10 +53,10 @@ def period_values(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
     r_up = lp.value(x, "r_up").reshape(T, N)
     r_dn = lp.value(x, "r_dn").reshape(T, N)
     # the solver may leave headroom a hair (its feasibility tolerance) below what the droop
-    # needs at full activation: report the rule's value, not the round-off
+    # needs at full activation: report the rule's value, not the round-off (verify/roundoff)
     need = gain * hz.a_act[None, :]
-    r_up = np.where(hz.need_up[:, None] & (need - r_up > 0) & (need - r_up < 1e-5), need, r_up)
-    r_dn = np.where(hz.need_dn[:, None] & (need - r_dn > 0) & (need - r_dn < 1e-5), need, r_dn)
+    r_up = snap_up(r_up, need, hz.need_up[:, None])
+    r_dn = snap_up(r_dn, need, hz.need_dn[:, None])
     return gain, np.where(r_up > 1e-9, r_up, 0.0), np.where(r_dn > 1e-9, r_dn, 0.0)
 
 
@@ -110,7 +111,11 @@ def model_prediction(lp: LinearProgram, info: ModelInfo, x: np.ndarray):
 
 
 def _make_result(case: Case, lp: LinearProgram, info: ModelInfo, out: Outcome,
-                 relax: bool, points: BatchPoints | None = None) -> Result:
+                 relax: bool, points: BatchPoints | None = None,
+                 check_model: bool = True) -> Result:
+    """The Result of a pass, verified independently. check_model=False (a pass the time
+    limit stopped before its settled guess converged): the optimiser's own figures rest on
+    that guess, so only the limits themselves are checked, not the agreement."""
     if points is None:
         points = exact_points(info, lp, out.x)
     dev_model, flow_model = model_prediction(lp, info, out.x)
@@ -118,7 +123,8 @@ def _make_result(case: Case, lp: LinearProgram, info: ModelInfo, out: Outcome,
     flows_exact = points.flow_after_mw
     dis_f = float(np.max(np.abs(dev_exact - dev_model), initial=0.0))
     dis_p = float(np.max(np.abs(flows_exact - flow_model), initial=0.0))
-    if not np.all(np.isfinite(dev_exact)) or dis_f > AGREE_HZ or dis_p > AGREE_MW:
+    if not np.all(np.isfinite(dev_exact)) or check_model and (dis_f > AGREE_HZ
+                                                             or dis_p > AGREE_MW):
         raise VerificationError(
             f"independent recalculation disagrees with the optimiser: settled deviation by "
             f"{dis_f * 1000:.3f} mHz, link flows by {dis_p:.3f} MW (allowed {AGREE_HZ * 1000} mHz,"

@@ -17,6 +17,7 @@ from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
 from optreserve.solver.backends import Outcome, solve_program
 from optreserve.solver.diagnose import diagnose
+from optreserve.solver.outcome import TIME_STATUSES, NoAllocationYet, best_verified, failed_pass
 from optreserve.solver.prices import _attach_prices
 from optreserve.solver.readback import _make_result, dispatch_view, exact_points, period_values
 
@@ -53,6 +54,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     iterations = 0
     history = []
     retried = False
+    timed_out = False  # stopped by the time budget before the passes converged
     nadir = {"scale": None, "rounds": 0, "checked": False, "worst_hz": None}
     while True:
         iterations += 1
@@ -67,8 +69,8 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         if time_limit is not None:  # the dead-band iterations share one time budget
             left = time_limit - (time.perf_counter() - t_start)
             if history and left <= 0:
-                lp, info, out = history[-1]
-                points = None
+                lp, info, out, points = best_verified(case, history, time_limit)
+                timed_out = True
                 break
             opts["time_limit"] = max(left, 0.01)
         start = history[-1][2].x if history and history[-1][0].n_cols == lp.n_cols else None
@@ -97,14 +99,14 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
             points = None
             break
         if out.x is None:
-            if history:  # a later dead-band iteration ran out of time: keep the last answer
-                lp, info, out = history[-1]
-                points = None
+            if out.status not in TIME_STATUSES:  # HiGHS failed: say so, in any pass
+                raise failed_pass(out, iterations) if history else SolverError(
+                    f"HiGHS stopped without a usable allocation ({out.status}: {out.message})")
+            if history:  # a later dead-band pass ran out of time: the best verified answer
+                lp, info, out, points = best_verified(case, history, time_limit)
+                timed_out = True
                 break
-            hint = (f"; no allocation found within the time limit of {time_limit:g} s: raise "
-                    "--time-limit" if out.status == "no_solution" else "")
-            raise SolverError(f"HiGHS stopped without a usable allocation ({out.status}: "
-                              f"{out.message}){hint}")
+            raise NoAllocationYet.within(time_limit, out.message)
         info.hz = dispatch_view(info.hz, lp, out.x)
         history.append((lp, info, out))
         progress.step("recomputing settled points independently")
@@ -126,7 +128,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         x_hat = np.where(live & np.isfinite(exact), exact, info.x_hat)
         points = None
 
-    result = _make_result(case, lp, info, out, relax, points)
+    result = _make_result(case, lp, info, out, relax, points, check_model=not timed_out)
     result.nadir_check = {k: nadir[k] for k in ("checked", "rounds", "worst_hz")}
     # our own tie-break price on headroom (model.TIE_BREAK_PER_MW_H) makes HiGHS remark on
     # "excessively small costs": that one is expected and not passed on
