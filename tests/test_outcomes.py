@@ -15,9 +15,9 @@ from pathlib import Path
 import pytest
 
 import optreserve
-import optreserve.solver.run as run
 from optreserve.cli import main
 from optreserve.errors import SolverError, VerificationError
+from optreserve.solver import run
 from optreserve.solver.backends import Outcome
 from optreserve.solver.outcome import NoAllocationYet
 from optreserve.verify.settle import settle_case

@@ -7,7 +7,7 @@ import json
 import sys
 
 from optreserve import __version__, progress
-from optreserve.cli.common import EXIT_INFEASIBLE, EXIT_INPUT, EXIT_OK, EXIT_OTHER
+from optreserve.cli.common import EXIT_INFEASIBLE, EXIT_INPUT, EXIT_OK, EXIT_OTHER, clean
 from optreserve.cli.snapshot import _add_report_parser, cmd_check, cmd_generate, cmd_solve
 from optreserve.cli.studies import _add_retune_parser, _add_simulate_parser, _add_study_parsers
 from optreserve.errors import CaseError, InfeasibleError, OptreserveError
@@ -100,21 +100,21 @@ def main(argv: list[str] | None = None) -> int:
             return args.func(args)
     except CaseError as exc:
         for p in exc.problems:
-            print(f"error: {p}", file=sys.stderr)
+            print(clean(f"error: {p}"), file=sys.stderr)
         if as_json:
             print(json.dumps({"status": "input_error", "errors": [
                 {"file": p.file, "row": p.row, "column": p.column, "message": p.message}
                 for p in exc.problems]}, indent=2))
         return EXIT_INPUT
     except InfeasibleError as exc:
-        print(f"infeasible: {exc}", file=sys.stderr)
+        print(clean(f"infeasible: {exc}"), file=sys.stderr)
         for line in exc.shortfalls:
-            print(f"  {line}", file=sys.stderr)
+            print(clean(f"  {line}"), file=sys.stderr)
         if as_json:
             print(json.dumps({"status": "infeasible", "shortfalls": exc.shortfalls}, indent=2))
         return EXIT_INFEASIBLE
     except OptreserveError as exc:
-        print(f"error: {exc}", file=sys.stderr)
+        print(clean(f"error: {exc}"), file=sys.stderr)
         return exc.exit_code
     except BrokenPipeError:  # output piped into head & co.
         return EXIT_OK
@@ -122,5 +122,5 @@ def main(argv: list[str] | None = None) -> int:
         print("interrupted; no output written", file=sys.stderr)
         return 130
     except Exception as exc:  # last line of defence: one line, no traceback
-        print(f"error: unexpected {type(exc).__name__}: {exc}", file=sys.stderr)
+        print(clean(f"error: unexpected {type(exc).__name__}: {exc}"), file=sys.stderr)
         return EXIT_OTHER

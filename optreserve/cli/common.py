@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import sys
 
 from optreserve.progress import use_colour
@@ -9,9 +10,22 @@ from optreserve.progress import use_colour
 EXIT_OK, EXIT_OTHER, EXIT_INPUT, EXIT_INFEASIBLE = 0, 1, 2, 3
 
 
+# C0 and C1 control characters (escape sequences, carriage returns, bells...) but newline
+_CONTROL = re.compile(r"[\x00-\x09\x0b-\x1f\x7f-\x9f]")
+
+
+def clean(text) -> str:
+    """Text for the terminal: every control character shown as its escape (an id holding an
+    escape sequence is printed as \\x1b[..., never obeyed by the terminal)."""
+    return _CONTROL.sub(lambda m: m.group().encode("unicode_escape").decode("ascii"),
+                        str(text))
+
+
 def _table(headers: list[str], rows: list[list[str]], right: set[int] | None = None) -> str:
     """Aligned plain-text table; columns in `right` are right-aligned (numbers)."""
     right = right or set()
+    headers = [clean(h) for h in headers]
+    rows = [[clean(c) for c in r] for r in rows]
     widths = [max(len(h), *(len(r[k]) for r in rows)) if rows else len(h)
               for k, h in enumerate(headers)]
 
@@ -25,7 +39,7 @@ def _table(headers: list[str], rows: list[list[str]], right: set[int] | None = N
 def _warn(case, quiet: bool) -> None:
     if not quiet:
         for w in case.warnings:
-            print(f"warning: {w}", file=sys.stderr)
+            print(clean(f"warning: {w}"), file=sys.stderr)
 
 
 def _paint(text: str, code: str) -> str:

@@ -8,7 +8,15 @@ import time
 from pathlib import Path
 
 from optreserve.case.reader import load_case
-from optreserve.cli.common import EXIT_INFEASIBLE, EXIT_INPUT, EXIT_OK, _paint, _table, _warn
+from optreserve.cli.common import (
+    EXIT_INFEASIBLE,
+    EXIT_INPUT,
+    EXIT_OK,
+    _paint,
+    _table,
+    _warn,
+    clean,
+)
 from optreserve.errors import InfeasibleError
 from optreserve.output.results import CAUTION, Result, write_table
 from optreserve.output.staging import check_out, staged_output
@@ -95,7 +103,7 @@ def cmd_solve(args) -> int:
         raise
     if not args.quiet:
         for w in result.solver_warnings:
-            print(f"warning: HiGHS: {w}", file=sys.stderr)
+            print(clean(f"warning: HiGHS: {w}"), file=sys.stderr)
     comparison = _compare(case, result) if getattr(args, "compare", None) else None
     report = None
     if out_dir is not None:
@@ -111,7 +119,7 @@ def cmd_solve(args) -> int:
     elif not args.quiet:
         _print_result(result, out_dir)
         if comparison is not None:
-            print("\n".join(comparison.lines()))
+            print(clean("\n".join(comparison.lines())))
         if report is not None:
             print(f"wrote {report}")
     return EXIT_OK
@@ -176,13 +184,13 @@ def _print_result(result: Result, out_dir: Path | None) -> None:
                  + f" ({r.flow_after_mw:+.1f} of {r.limit_mw:.0f} MW)"
                  for r in bl.head(8).itertuples()]
         more = f"; and {len(bl) - 8} more" if len(bl) > 8 else ""
-        print("binding links: " + "; ".join(shown) + more)
+        print(clean("binding links: " + "; ".join(shown) + more))
     else:
         lk = result.links
         if len(lk):
             top = lk.loc[lk["loading_pct"].idxmax()]
-            print(f"no link at its limit; highest loading {top['loading_pct']:.1f} % "
-                  f"({top['link']} after {top['event']})")
+            print(clean(f"no link at its limit; highest loading {top['loading_pct']:.1f} % "
+                        f"({top['link']} after {top['event']})"))
     t = s["timings_s"]
     print("time: " + ", ".join(f"{k} {v:.2f} s" for k, v in t.items()))
     if out_dir is not None:

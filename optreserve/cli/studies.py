@@ -8,7 +8,7 @@ import time
 from pathlib import Path
 
 from optreserve.case.reader import load_case
-from optreserve.cli.common import EXIT_INPUT, EXIT_OK, EXIT_OTHER, _pct, _table, _warn
+from optreserve.cli.common import EXIT_INPUT, EXIT_OK, EXIT_OTHER, _pct, _table, _warn, clean
 from optreserve.cli.snapshot import _write_diagnosis
 from optreserve.errors import InfeasibleError
 from optreserve.output.results import CAUTION
@@ -50,7 +50,7 @@ def cmd_retune(args) -> int:
     else:
         print("today's settings break these limits:")
         for v in prop.violations_before[:12]:
-            print(f"  {v}")
+            print(clean(f"  {v}"))
         if len(prop.violations_before) > 12:
             print(f"  ... and {len(prop.violations_before) - 12} more")
     ch = prop.changed
@@ -124,7 +124,7 @@ def cmd_simulate(args) -> int:
     if args.quiet:
         return EXIT_OK
     for w in sim.warnings:
-        print(f"warning: {w}", file=sys.stderr)
+        print(clean(f"warning: {w}"), file=sys.stderr)
     sm = sim.summary
     ok = {True: "ok", False: "NO", None: "-"}
     rows = [[str(r.event), f"{r.size_mw:+.1f}", f"{r.nadir_hz:.3f}", f"{r.nadir_time_s:.2f}",

@@ -39,6 +39,7 @@ from scipy.optimize import minimize_scalar
 from optreserve.case.data import Case
 from optreserve.case.reader import Col, _Collector, _read_csv, _typed_table
 from optreserve.errors import CaseError, OptreserveError, Problem
+from optreserve.output.cells import unescape
 from optreserve.output.results import CAUTION, write_table
 from optreserve.output.staging import staged_output
 from optreserve.verify.settle import settle_instances
@@ -118,6 +119,9 @@ def read_allocation(path: str | Path, case: Case) -> pd.DataFrame:
     col.raise_if_any()
     df.attrs["file"] = str(p)
     df.attrs["warnings"] = list(col.warnings)
+    for c in ("unit", "area"):  # ids as written by write_table (spreadsheet-safe quoting)
+        if c in df.columns:
+            df[c] = unescape(df[c].to_numpy(object))
     _check_allocation(case, df, str(p), col)
     col.raise_if_any()
     return df
@@ -528,9 +532,7 @@ class Simulation:
         t0 = time.perf_counter()
         out = Path(out_dir)
         with staged_output(out, force) as tmp:
-            write_table(self.summary, tmp / SUMMARY_FILE)
-            text = (tmp / SUMMARY_FILE).read_text(encoding="utf-8")
-            (tmp / SUMMARY_FILE).write_text(f"# {CAUTION}\n" + text, encoding="utf-8")
+            write_table(self.summary, tmp / SUMMARY_FILE)  # header first; caution in JSON
             names = file_names(list(self.series))
             for ev, stem in names.items():
                 write_table(self.series[ev], tmp / f"series_{stem}.csv")

@@ -75,8 +75,8 @@ def _error(case: Case, lines: list[str], table: pd.DataFrame) -> InfeasibleError
     if not lines:
         lines = ["the limits conflict in a way no single relaxation explains"]
     if len(lines) > MAX_LINES:
-        lines = lines[:MAX_LINES] + [f"... and {len(lines) - MAX_LINES} more (see "
-                                     "diagnosis.csv)"]
+        more = len(lines) - MAX_LINES
+        lines = [*lines[:MAX_LINES], f"... and {more} more (see diagnosis.csv)"]
     return InfeasibleError("no allocation can meet the limits", lines, diag)
 
 

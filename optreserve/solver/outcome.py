@@ -29,7 +29,7 @@ class NoAllocationYet(SolverError):
     exit_code = 4
 
     @classmethod
-    def within(cls, time_limit: float | None, detail: str = "") -> "NoAllocationYet":
+    def within(cls, time_limit: float | None, detail: str = "") -> NoAllocationYet:
         limit = f" of {time_limit:g} s" if time_limit is not None else ""
         why = f" ({detail})" if detail else ""
         return cls(f"no allocation yet: the time limit{limit} came before any allocation met "

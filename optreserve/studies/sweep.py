@@ -355,7 +355,7 @@ def write_study(table: pd.DataFrame, out: Path, name: str, keys: list[str], meta
     two keys vary, and NAME.json (what was run, the counts, the caution); all at once."""
     written = []
     with staged_output(Path(out), force) as tmp:
-        write_table(table, tmp / f"{name}.csv")
+        write_table(table, tmp / f"{name}.csv", exact=tuple(keys))  # swept values in full
         written.append(f"{name}.csv")
         if len(table) >= PARQUET_MIN_ROWS:
             table.to_parquet(tmp / f"{name}.parquet", index=False)
