@@ -58,9 +58,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--report", action="store_true", help="also write report.html into --out "
                    "(see the report command)")
     s.add_argument("--compare", choices=["uniform"], help="also cost the uniform-droop policy "
-                   "(one droop for every capable unit; droop_now_pct where given), list the "
-                   "limits it breaks and the saving of the optimum; with --out writes "
-                   "comparison.csv, comparison.json and uniform_allocation.csv")
+                   "(one droop for every capable unit) and today's settings (droop_now_pct), "
+                   "list the limits each breaks and the saving of the optimum; with --out "
+                   "writes comparison.csv, comparison.json and uniform_allocation.csv")
     s.set_defaults(func=cmd_solve)
 
     g = sub.add_parser("generate", help="write a synthetic day-ahead case",

@@ -23,6 +23,7 @@ from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
 from optreserve.solver.readback import evaluate_allocation
 from optreserve.solver.run import solve
+from optreserve.studies.today import Today, today
 from optreserve.verify.breaks import describe, what_breaks
 
 # Continuous droop bands are searched on this grid (plus today's setting) in a retune.
@@ -72,30 +73,7 @@ class Proposal:
         return self.result.write(out_dir, force=force)
 
 
-# ------------------------------------------------------------------ today's settings
-@dataclass(frozen=True)
-class Today:
-    droop_pct: np.ndarray  # (N,) NaN: not providing today
-    gain: np.ndarray  # (T, N) responding gain per period
-    r_up: np.ndarray  # (T, N) headroom it holds (sized by the full-activation rule, capped)
-    r_dn: np.ndarray
-
-
-def today(case: Case, hz: Horizon) -> Today:
-    """Today's settings as the case states them: droop_now_pct where given (and the unit may
-    provide), headroom sized by the full-activation rule but no more than the unit's room."""
-    now = case.units["droop_now_pct"].to_numpy(float)
-    provides = case.unit_matrix("provides").astype(bool)
-    K = np.where(np.isnan(now), 0.0, case.gain_from_droop(np.where(np.isnan(now), 1.0, now)))
-    K = np.where(provides.any(axis=0), K, 0.0)  # a unit that may not provide has no setting
-    gain = K[None, :] * provides
-    need = gain * hz.a_act[None, :]
-    r_up = np.where(hz.need_up[:, None] | (hz.own[:, hz.area] > 0), np.minimum(need, hz.R_up),
-                    0.0)
-    r_dn = np.where(hz.need_dn[:, None], np.minimum(need, hz.R_dn), 0.0)
-    return Today(np.where(K > 0, now, np.nan), gain, r_up, r_dn)
-
-
+# ------------------------------------------------------------------ what breaks
 def violations(case: Case, hz: Horizon, gain, r_up, r_dn, limit_hz: float) -> list[str]:
     """Every limit the allocation breaks, recomputed independently, in words (the one
     evaluation of verify/breaks.py, as `solve`'s diagnosis and `check` use)."""
