@@ -8,6 +8,8 @@ import sys
 from optreserve.progress import use_colour
 
 EXIT_OK, EXIT_OTHER, EXIT_INPUT, EXIT_INFEASIBLE = 0, 1, 2, 3
+EXIT_NO_ALLOCATION = 4  # time limit before any allocation met the limits (NoAllocationYet)
+EXIT_CASES_FAILED = 5  # batch: at least one case did not solve (its row says why)
 
 
 # C0 and C1 control characters (escape sequences, carriage returns, bells...) but newline
