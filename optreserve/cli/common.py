@@ -51,3 +51,14 @@ def _paint(text: str, code: str) -> str:
 
 def _pct(v) -> str:
     return "off" if v != v else f"{v:g}"
+
+
+def num(v: float, decimals: int = 1, sign: bool = False) -> str:
+    """A number for the terminal without negative zero: a margin of -0.00001 mHz is 0.0."""
+    r = round(float(v), decimals) + 0.0 if v == v else float(v)  # + 0.0: -0.0 becomes 0.0
+    return f"{r:{'+' if sign else ''}.{decimals}f}"
+
+
+def plural(n: int, word: str) -> str:
+    """'1 link', '3 links'."""
+    return f"{n} {word}" + ("" if n == 1 else "s")

@@ -17,6 +17,8 @@ from optreserve.cli.common import (
     _table,
     _warn,
     clean,
+    num,
+    plural,
 )
 from optreserve.cli.snapshot import _write_diagnosis
 from optreserve.errors import InfeasibleError
@@ -66,14 +68,14 @@ def cmd_retune(args) -> int:
     if len(ch):
         rows = [[str(r.unit), str(r.area), _pct(r.droop_now_pct), _pct(r.droop_proposed_pct),
                  str(r.change), str(r.reason)] for r in ch.itertuples()]
-        print(f"{len(ch)} unit(s) to change, total droop change "
+        print(f"{plural(len(ch), 'unit')} to change, total droop change "
               f"{prop.proposal['droop_change_pct'].sum():.2f} percentage points:")
         print(_table(["unit", "area", "droop now %", "proposed %", "change", "reason"], rows,
                      {2, 3}))
     ba = prop.before_after
     rows = [[str(r.event), f"{r.settled_frequency_before_hz:.4f}",
-             f"{r.settled_frequency_after_hz:.4f}", f"{r.margin_before_hz * 1000:.1f}",
-             f"{r.margin_after_hz * 1000:.1f}"]
+             f"{r.settled_frequency_after_hz:.4f}", num(r.margin_before_hz * 1000),
+             num(r.margin_after_hz * 1000)]
             + ([f"{r.loading_before_pct:.1f}", f"{r.loading_after_pct:.1f}"]
                if "loading_before_pct" in ba.columns else [])
             for r in ba.itertuples()]
@@ -141,12 +143,13 @@ def cmd_simulate(args) -> int:
              f"{r.settled_frequency_hz:.4f}", ok[r.settled_ok], ok[r.nadir_ok], ok[r.rocof_ok]]
             for r in sm.itertuples()]
     print(f"case {case.name!r}" + (f", period {sim.period}" if sim.period else "")
-          + f": {len(sm)} event(s) simulated")
+          + f": {plural(len(sm), 'event')} simulated")
     print(_table(["event", "size MW", "nadir Hz", "at s", "RoCoF Hz/s", "dP fn/2H",
                   "settles Hz", "settled", "nadir", "RoCoF"], rows, set(range(1, 7))))
     broken = int(sm[["settled_ok", "nadir_ok", "rocof_ok"]].eq(False).any(axis=1).sum())
     if broken:
-        print(f"{broken} event(s) break a limit in the simulation", file=sys.stderr)
+        verb = "breaks" if broken == 1 else "break"
+        print(f"{plural(broken, 'event')} {verb} a limit in the simulation", file=sys.stderr)
     print(f"wrote {out_dir}: simulation_summary.csv simulation.json and per event series_*.csv "
           "plot_*.png")
     print(CAUTION)
