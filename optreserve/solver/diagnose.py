@@ -34,6 +34,8 @@ LINK_BISECTION_STEPS = 6
 # Links within this of their limit in the elastic allocation are candidates.
 LINK_CANDIDATE_MW = 1e-2
 MAX_LINES = 20
+# Links tested one at a time (the most loaded first); beyond them only as a group.
+MAX_ALONE = 8
 
 
 def diagnose(case: Case, hz: Horizon | None = None, extend=None) -> InfeasibleError:
@@ -97,7 +99,8 @@ def _feasible(case: Case, hz: Horizon, extend):
         extend(lp, info)
     lp.zero_costs()
     lp.objective_offset = 0.0
-    out = solve_program(lp, engine="highspy")
+    # a feasibility question: the case's own time limit per solve (no answer = not shown)
+    out = solve_program(lp, engine="highspy", time_limit=case.solver.time_limit_s)
     if out.x is None or out.status == "infeasible":
         return None
     return period_values(lp, info, out.x)
@@ -115,8 +118,10 @@ def _limiting_links(case: Case, hz: Horizon, extend, pts):
     when relaxing the links does not make the case feasible."""
     if not hz.F0.shape[1] or not len(hz.dP):
         return None
-    near = np.abs(pts.flow_after_mw) >= hz.Fmax[hz.inst_t] - LINK_CANDIDATE_MW
+    loading = np.abs(pts.flow_after_mw) - hz.Fmax[hz.inst_t]
+    near = loading >= -LINK_CANDIDATE_MW
     cand = np.nonzero(near.any(axis=0))[0]
+    cand = cand[np.argsort(-loading.max(axis=0)[cand], kind="stable")]  # most loaded first
     if not len(cand):
         return None
     # a limit no flow can reach: |F0| + 2 |dP| bounds every post-event flow (shares sum to 1)
@@ -126,7 +131,7 @@ def _limiting_links(case: Case, hz: Horizon, extend, pts):
     link_ids = [str(x) for x in case.links["link"]]
     labels = [str(p) for p in case.periods] if case.is_horizon else [""] * hz.T
     rows = []
-    alone = [li for li in cand
+    alone = [li for li in cand[:MAX_ALONE]
              if _feasible(case, _with_limits(hz, [li], free), extend) is not None]
     for li in alone or list(cand):
         group = [li] if alone else list(cand)
