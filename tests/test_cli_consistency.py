@@ -24,7 +24,7 @@ def test_time_line_is_the_summary_total_and_every_step_is_a_key(tmp_path, capsys
     assert main(["solve", str(DEMO), "--out", str(out), "--compare", "uniform"]) == 0
     text = capsys.readouterr().out
     line = next(ln for ln in text.splitlines() if ln.startswith("time: "))
-    printed = dict((k, float(v)) for k, v in re.findall(r"(\w+) ([0-9.]+) s", line))
+    printed = {k: float(v) for k, v in re.findall(r"(\w+) ([0-9.]+) s", line)}
     t = json.loads((out / "summary.json").read_text())["timings_s"]
     assert list(printed) == list(t)
     for k, v in t.items():

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import re
 import sys
 
@@ -55,7 +56,7 @@ def _pct(v) -> str:
 
 def num(v: float, decimals: int = 1, sign: bool = False) -> str:
     """A number for the terminal without negative zero: a margin of -0.00001 mHz is 0.0."""
-    r = round(float(v), decimals) + 0.0 if v == v else float(v)  # + 0.0: -0.0 becomes 0.0
+    r = float(v) if math.isnan(v) else round(float(v), decimals) + 0.0  # -0.0 becomes 0.0
     return f"{r:{'+' if sign else ''}.{decimals}f}"
 
 
