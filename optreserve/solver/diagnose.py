@@ -141,7 +141,9 @@ def _limiting_links(case: Case, hz: Horizon, extend, pts):
         rows.append({"family": "link", "element": link_ids[li], "event": hz.inst_name[worst],
                      "period": labels[hz.inst_t[worst]], "short_mw": 0.0, "excess_hz": 0.0,
                      "over_mw": need - lim, "text": _link_text(
-                         link_ids[li], lim, need, hz.inst_name[worst], alone)})
+                         link_ids[li], lim, need, hz.inst_name[worst]
+                         + (f" in period {labels[hz.inst_t[worst]]}" if case.is_horizon
+                            else ""), alone)})
     texts = [r.pop("text") for r in rows]
     return pd.DataFrame(rows, columns=COLUMNS), texts
 
