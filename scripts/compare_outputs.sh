@@ -18,6 +18,7 @@ run() {  # $1 = source tree, $2 = output folder
   PYTHONPATH="$src" "$py" -m optreserve solve "$out/gen-case" --out "$out/gen" --quiet
   PYTHONPATH="$src" "$py" -m optreserve retune "$root/instances/demo-tri-valley" --out "$out/retune" --quiet
 }
+cd "$work"  # python -m puts the current folder first on sys.path: never the tree under test
 run "$work/old" "$work/a"
 run "$root" "$work/b"
 "$py" - "$work/a" "$work/b" <<'PY'

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import json
 
-import numpy as np
+import pandas as pd
 import pytest
 from conftest import build_case, csv_text, settings, unit, write_case
 
@@ -201,11 +201,14 @@ def test_uniform_droop_breaks_a_link_the_optimum_respects(case_dir):
     assert ua.loc["Brookfell_1", "gain_mw_per_hz"] == pytest.approx(250.0)
 
 
-def test_uniform_keeps_droop_now_and_cli_writes_comparison(case_dir, tmp_path):
-    """With droop_now_pct given the policy is today's setting: 5 % on both units gives
-    K = 400 + 200 = 600 MW/Hz, deviation 150/600 = 0.25 Hz > 0.2 Hz (textbook law; headroom
-    sized at F_act = 0.3 Hz, so nothing saturates), and the link carries 2/3 of 150 = 100 MW
-    > 80 MW: two broken limits, written by the CLI. Cost 0.3 * (3*400 + 1*200) = 420."""
+def test_uniform_is_one_droop_for_all_and_today_is_reported_apart(case_dir, tmp_path):
+    """Both units have droop_now_pct = 5 %, F_act = 0.3 Hz (headroom sized at 0.3 Hz, nothing
+    saturates). Textbook law (references.md): one droop s on both gives K = 3000/s MW/Hz and
+    a deviation of 150/(3000/s) = 0.05 s Hz, inside 0.2 Hz only for s <= 4 %; Aldmere carries
+    2/3 of the response at any s: 100 MW over the 80 MW link. So the uniform policy is 4 % on
+    both (one broken limit, the link), cost 0.3 * (3*500 + 1*250) = 525. Today's 5 % is its
+    own row: K = 400 + 200 = 600 MW/Hz, deviation 0.25 Hz and the link, two broken limits,
+    cost 0.3 * (3*400 + 1*200) = 420, the same today retune starts from."""
     units = [unit("Aldmere_1", "Aldmere", 1000, 600, 4, 6, price_up=3, droop_now_pct=5),
              unit("Brookfell_1", "Brookfell", 500, 200, 2, 6, price_up=1, droop_now_pct=5)]
     folder = write_case(case_dir(), settings(limits={"full_activation_deviation_hz": 0.3}),
@@ -220,14 +223,29 @@ def test_uniform_keeps_droop_now_and_cli_writes_comparison(case_dir, tmp_path):
     assert main(["solve", str(folder), "--out", str(out), "--compare", "uniform",
                  "--quiet"]) == 0
     doc = json.loads((out / "comparison.json").read_text())
-    assert doc["uniform_droop_pct"] is None
+    assert doc["uniform_droop_pct"] == pytest.approx(4.0)
     got = {(v["limit"], v["element"]): v["value"] for v in doc["violations"]}
-    assert got[("settled_deviation", "step")] == pytest.approx(0.25, rel=1e-9)
+    assert set(got) == {("link", "Ald-Brook")}
     assert got[("link", "Ald-Brook")] == pytest.approx(100.0, rel=1e-9)
+    assert doc["uniform_cost"] == pytest.approx(0.3 * (3 * 500 + 250), rel=1e-9)
+    today = {(v["limit"], v["element"]): v["value"] for v in doc["today"]["violations"]}
+    assert today[("settled_deviation", "step")] == pytest.approx(0.25, rel=1e-9)
+    assert today[("link", "Ald-Brook")] == pytest.approx(100.0, rel=1e-9)
+    assert doc["today"]["cost"] == pytest.approx(0.3 * (3 * 400 + 200), rel=1e-9)
     assert "caution" in doc
-    rows = (out / "comparison.csv").read_text().splitlines()
-    assert rows[0].startswith("policy,droop_rule,cost_per_h")
-    assert np.isclose(float(rows[1].split(",")[2]), 0.3 * (3 * 400 + 200))
+    rows = pd.read_csv(out / "comparison.csv").set_index("policy")
+    assert list(rows.index) == ["uniform", "today", "optimum"]
+    assert rows.loc["today", "cost_per_h"] == pytest.approx(0.3 * (3 * 400 + 200))
+    # the same "today" as retune's before: its violations name the same two limits
+    from optreserve.model.horizon import prepare
+    from optreserve.studies.retune import today as retune_today
+    from optreserve.studies.retune import violations
+
+    case = optreserve.load_case(folder)
+    hz = prepare(case)
+    now = retune_today(case, hz)
+    words = violations(case, hz, now.gain, now.r_up, now.r_dn, 0.2)
+    assert len(words) == 2 and words[0].startswith("event step") and "Ald-Brook" in words[1]
 
 
 def test_uniform_comparison_over_a_horizon(case_dir):

@@ -6,6 +6,7 @@ textbook two-area example (references.md), the tests' own settled balance + DC l
 
 from __future__ import annotations
 
+import json
 import math
 from pathlib import Path
 
@@ -365,7 +366,8 @@ def _cli_case(case_dir):
 
 def test_cli_writes_series_plots_and_summary_with_caution(case_dir, capsys):
     """The command writes one series and one PNG per event and a summary whose first line is
-    the planning-study caution; a second run into the same folder needs --force."""
+    its header (plain pandas.read_csv reads it; the caution is printed and in
+    simulation.json); a second run into the same folder needs --force."""
     folder, alloc = _cli_case(case_dir)
     out = case_dir("out")
     argv = ["simulate", str(folder), "--allocation", str(alloc), "--all", "--out", str(out),
@@ -374,8 +376,9 @@ def test_cli_writes_series_plots_and_summary_with_caution(case_dir, capsys):
     text = capsys.readouterr().out
     assert "Planning study only" in text
     lines = (out / "simulation_summary.csv").read_text().splitlines()
-    assert lines[0].startswith("# Planning study only")
-    sm = pd.read_csv(out / "simulation_summary.csv", comment="#")
+    assert lines[0].startswith("event,")
+    assert "Planning study only" in json.loads((out / "simulation.json").read_text())["caution"]
+    sm = pd.read_csv(out / "simulation_summary.csv")
     assert list(sm["event"]) == ["feeder_step", "trip_sedge"]
     for ev in sm["event"]:
         assert (out / f"plot_{ev}.png").read_bytes()[:4] == b"\x89PNG"

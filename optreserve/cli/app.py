@@ -13,6 +13,7 @@ from optreserve.cli.common import (
     EXIT_OK,
     EXIT_OTHER,
     STRICT_HELP,
+    clean,
 )
 from optreserve.cli.snapshot import _add_report_parser, cmd_check, cmd_generate, cmd_solve
 from optreserve.cli.studies import _add_retune_parser, _add_simulate_parser, _add_study_parsers
@@ -66,9 +67,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--report", action="store_true", help="also write report.html into --out "
                    "(see the report command)")
     s.add_argument("--compare", choices=["uniform"], help="also cost the uniform-droop policy "
-                   "(one droop for every capable unit; droop_now_pct where given), list the "
-                   "limits it breaks and the saving of the optimum; with --out writes "
-                   "comparison.csv, comparison.json and uniform_allocation.csv")
+                   "(one droop for every capable unit) and today's settings (droop_now_pct), "
+                   "list the limits each breaks and the saving of the optimum; with --out "
+                   "writes comparison.csv, comparison.json and uniform_allocation.csv")
     s.add_argument("--price-step", type=float, metavar="MW", help="growth of each event (and "
                    "own-reserve requirement) for its incremental cost (default max(1 MW, 1 %% "
                    "of its size))")
@@ -113,21 +114,21 @@ def main(argv: list[str] | None = None) -> int:
             return args.func(args)
     except CaseError as exc:
         for p in exc.problems:
-            print(f"error: {p}", file=sys.stderr)
+            print(clean(f"error: {p}"), file=sys.stderr)
         if as_json:
             print(json.dumps({"status": "input_error", "errors": [
                 {"file": p.file, "row": p.row, "column": p.column, "message": p.message}
                 for p in exc.problems]}, indent=2))
         return EXIT_INPUT
     except InfeasibleError as exc:
-        print(f"infeasible: {exc}", file=sys.stderr)
+        print(clean(f"infeasible: {exc}"), file=sys.stderr)
         for line in exc.shortfalls:
-            print(f"  {line}", file=sys.stderr)
+            print(clean(f"  {line}"), file=sys.stderr)
         if as_json:
             print(json.dumps({"status": "infeasible", "shortfalls": exc.shortfalls}, indent=2))
         return EXIT_INFEASIBLE
     except OptreserveError as exc:
-        print(f"error: {exc}", file=sys.stderr)
+        print(clean(f"error: {exc}"), file=sys.stderr)
         return exc.exit_code
     except BrokenPipeError:  # output piped into head & co.
         return EXIT_OK
@@ -135,5 +136,5 @@ def main(argv: list[str] | None = None) -> int:
         print("interrupted; no output written", file=sys.stderr)
         return 130
     except Exception as exc:  # last line of defence: one line, no traceback
-        print(f"error: unexpected {type(exc).__name__}: {exc}", file=sys.stderr)
+        print(clean(f"error: unexpected {type(exc).__name__}: {exc}"), file=sys.stderr)
         return EXIT_OTHER

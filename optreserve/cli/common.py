@@ -2,17 +2,34 @@
 
 from __future__ import annotations
 
+import math
+import re
 import sys
 
 from optreserve.progress import use_colour
 
 EXIT_OK, EXIT_OTHER, EXIT_INPUT, EXIT_INFEASIBLE = 0, 1, 2, 3
 STRICT_HELP = "treat every warning about the case as an input error (exit 2)"
+EXIT_NO_ALLOCATION = 4  # time limit before any allocation met the limits (NoAllocationYet)
+EXIT_CASES_FAILED = 5  # batch: at least one case did not solve (its row says why)
+
+
+# C0 and C1 control characters (escape sequences, carriage returns, bells...) but newline
+_CONTROL = re.compile(r"[\x00-\x09\x0b-\x1f\x7f-\x9f]")
+
+
+def clean(text) -> str:
+    """Text for the terminal: every control character shown as its escape (an id holding an
+    escape sequence is printed as \\x1b[..., never obeyed by the terminal)."""
+    return _CONTROL.sub(lambda m: m.group().encode("unicode_escape").decode("ascii"),
+                        str(text))
 
 
 def _table(headers: list[str], rows: list[list[str]], right: set[int] | None = None) -> str:
     """Aligned plain-text table; columns in `right` are right-aligned (numbers)."""
     right = right or set()
+    headers = [clean(h) for h in headers]
+    rows = [[clean(c) for c in r] for r in rows]
     widths = [max(len(h), *(len(r[k]) for r in rows)) if rows else len(h)
               for k, h in enumerate(headers)]
 
@@ -32,7 +49,7 @@ def _warn(case, quiet: bool, strict: bool = False) -> None:
         raise CaseError(strict_problems(case.warnings))
     if not quiet:
         for w in case.warnings:
-            print(f"warning: {w}", file=sys.stderr)
+            print(clean(f"warning: {w}"), file=sys.stderr)
 
 
 def _paint(text: str, code: str) -> str:
@@ -42,3 +59,14 @@ def _paint(text: str, code: str) -> str:
 
 def _pct(v) -> str:
     return "off" if v != v else f"{v:g}"
+
+
+def num(v: float, decimals: int = 1, sign: bool = False) -> str:
+    """A number for the terminal without negative zero: a margin of -0.00001 mHz is 0.0."""
+    r = float(v) if math.isnan(v) else round(float(v), decimals) + 0.0  # -0.0 becomes 0.0
+    return f"{r:{'+' if sign else ''}.{decimals}f}"
+
+
+def plural(n: int, word: str) -> str:
+    """'1 link', '3 links'."""
+    return f"{n} {word}" + ("" if n == 1 else "s")

@@ -8,11 +8,22 @@ import time
 from pathlib import Path
 
 from optreserve.case.reader import load_case
-from optreserve.cli.common import EXIT_INFEASIBLE, EXIT_INPUT, EXIT_OK, _paint, _table, _warn
+from optreserve.cli.common import (
+    EXIT_INFEASIBLE,
+    EXIT_INPUT,
+    EXIT_OK,
+    _paint,
+    _table,
+    _warn,
+    clean,
+    num,
+    plural,
+)
 from optreserve.errors import InfeasibleError
 from optreserve.output.results import CAUTION, Result, write_table
 from optreserve.output.staging import check_out, staged_output
-from optreserve.solver.screen import event_capability
+from optreserve.solver.screen import event_capability, screening_scope
+from optreserve.solver.timing import close_total
 
 
 # ------------------------------------------------------------------ check
@@ -32,9 +43,9 @@ def cmd_check(args) -> int:
     u, ev = case.units, case.events
     n_under = int((ev["size_mw"] > 0).sum())
     n_over = int((ev["size_mw"] < 0).sum())
-    print(f"case {case.name!r}: {len(u)} units ({int(u['provides'].sum())} may provide), "
-          f"{len(case.areas)} areas, {len(case.links)} links, {len(ev)} events "
-          f"({n_under} under-frequency, {n_over} over-frequency)")
+    print(f"case {case.name!r}: {plural(len(u), 'unit')} ({int(u['provides'].sum())} may "
+          f"provide), {plural(len(case.areas), 'area')}, {plural(len(case.links), 'link')}, "
+          f"{plural(len(ev), 'event')} ({n_under} under-frequency, {n_over} over-frequency)")
     lim = case.limits
     print(f"limits: settled deviation {lim.max_settled_deviation_hz * 1000:.0f} mHz, full "
           f"activation at {lim.full_activation_deviation_hz * 1000:.0f} mHz; droop "
@@ -47,7 +58,7 @@ def cmd_check(args) -> int:
         cap = cap.loc[cap.groupby("event", sort=False)["_r"].idxmin().fillna(0).astype(int)]
         print(f"{case.n_periods} periods ({case.hours().sum():g} h), droop "
               + ("fixed over the horizon" if case.hold_periods is None else
-                 f"held for {case.hold_periods} period(s)") + "; per event its tightest period:")
+                 f"held for {plural(case.hold_periods, 'period')}") + "; per event its tightest period:")
     rows = []
     for r in cap.itertuples():
         ratio = r.offered_gain_mw_per_hz / r.needed_gain_mw_per_hz if r.needed_gain_mw_per_hz \
@@ -57,14 +68,14 @@ def cmd_check(args) -> int:
                      f"{r.offered_gain_mw_per_hz:.1f}",
                      "ok" if r.short_mw <= 0 else f"SHORT {r.short_mw:.1f} MW",
                      f"{ratio:.2f}"])
-    print(_table(["event", "size MW", "needs MW/Hz", "can offer MW/Hz", "", "ratio"], rows,
+    print(_table(["event", "size MW", "needs MW/Hz", "can offer MW/Hz", "status", "ratio"], rows,
                  {1, 2, 3, 5}))
     short = cap[cap["short_mw"] > 0]
     if len(short):
-        print(f"{len(short)} event(s) cannot be met even with every provider at its highest "
+        print(f"{plural(len(short), 'event')} cannot be met even with every provider at its highest "
               "gain", file=sys.stderr)
         return EXIT_INFEASIBLE
-    print("case is valid")
+    print("case is valid" + screening_scope(case))
     return EXIT_OK
 
 
@@ -102,13 +113,18 @@ def cmd_solve(args) -> int:
         raise
     if not args.quiet:
         for w in result.solver_warnings:
-            print(f"warning: HiGHS: {w}", file=sys.stderr)
-    comparison = _compare(case, result) if getattr(args, "compare", None) else None
+            print(clean(f"warning: HiGHS: {w}"), file=sys.stderr)
+    comparison = None
+    if getattr(args, "compare", None):
+        t_cmp = time.perf_counter()
+        comparison = _compare(case, result)
+        result.timings_s["compare"] = time.perf_counter() - t_cmp
+    # the command's own wall time is the total summary.json records and `time:` prints
+    close_total(result.timings_s, time.perf_counter() - t0)
     report = None
     if out_dir is not None:
         result.write(out_dir, force=args.force)
         report = _solve_report(out_dir, args) if getattr(args, "report", False) else None
-    result.timings_s["total"] = time.perf_counter() - t0
     if getattr(args, "json", False):
         doc = dict(result.summary)
         doc["events"] = json.loads(result.events.to_json(orient="records"))
@@ -118,7 +134,7 @@ def cmd_solve(args) -> int:
     elif not args.quiet:
         _print_result(result, out_dir)
         if comparison is not None:
-            print("\n".join(comparison.lines()))
+            print(clean("\n".join(comparison.lines())))
         if report is not None:
             print(f"wrote {report}")
     return EXIT_OK
@@ -158,7 +174,8 @@ def _print_result(result: Result, out_dir: Path | None) -> None:
         cost = f"cost {s['objective_per_h']:.2f} per hour"
     status = _paint(s["status"], "32" if s["status"] == "optimal" else "33")
     print(f"case {s['case']!r}: {status}, {cost}{gap}")
-    print(f"{s['units_providing']} of {len(result.case.units)} units provide; peak headroom "
+    print(f"{s['units_providing']} of {plural(len(result.case.units), 'unit')} provide; peak "
+          "headroom "
           f"{s['headroom_up_mw']:.1f} MW up, {s['headroom_down_mw']:.1f} MW down")
     ev = result.events.assign(
         margin_hz=result.events["limit_hz"] - result.events["settled_deviation_hz"].abs())
@@ -172,7 +189,7 @@ def _print_result(result: Result, out_dir: Path | None) -> None:
         price = r.marginal_cost_per_mw_h
         rows.append([str(r.event)] + ([str(r.period)] if horizon else []) + [
             str(r.kind), f"{r.size_mw:.1f}", f"{r.settled_frequency_hz:.4f}",
-            f"{r.settled_deviation_hz * 1000:+.1f}", f"{r.margin_hz * 1000:.1f}",
+            num(r.settled_deviation_hz * 1000, 1, sign=True), num(r.margin_hz * 1000),
             "yes" if r.binding else "", "n/a" if price != price else f"{price:.3f}"]
             + ([_price_text(r.incremental_cost_per_mw_h)] if inc else []))
     head = ["event"] + (["period"] if horizon else []) + [
@@ -187,13 +204,13 @@ def _print_result(result: Result, out_dir: Path | None) -> None:
                  + f" ({r.flow_after_mw:+.1f} of {r.limit_mw:.0f} MW)"
                  for r in bl.head(8).itertuples()]
         more = f"; and {len(bl) - 8} more" if len(bl) > 8 else ""
-        print("binding links: " + "; ".join(shown) + more)
+        print(clean("binding links: " + "; ".join(shown) + more))
     else:
         lk = result.links
         if len(lk):
             top = lk.loc[lk["loading_pct"].idxmax()]
-            print(f"no link at its limit; highest loading {top['loading_pct']:.1f} % "
-                  f"({top['link']} after {top['event']})")
+            print(clean(f"no link at its limit; highest loading {top['loading_pct']:.1f} % "
+                        f"({top['link']} after {top['event']})"))
     t = s["timings_s"]
     print("time: " + ", ".join(f"{k} {v:.2f} s" for k, v in t.items()))
     if out_dir is not None:
@@ -234,8 +251,9 @@ def cmd_generate(args) -> int:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_INPUT
     if not args.quiet:
-        print(f"wrote synthetic case to {out} ({args.units} units, {args.areas} areas, "
-              f"{args.links} links, {args.periods} periods, {args.events} events, seed "
+        print(f"wrote synthetic case to {out} ({plural(args.units, 'unit')}, "
+              f"{plural(args.areas, 'area')}, {plural(args.links, 'link')}, "
+              f"{plural(args.periods, 'period')}, {plural(args.events, 'event')}, seed "
               f"{args.seed})")
     return EXIT_OK
 

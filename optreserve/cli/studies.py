@@ -9,6 +9,7 @@ from pathlib import Path
 
 from optreserve.case.reader import load_case
 from optreserve.cli.common import (
+    EXIT_CASES_FAILED,
     EXIT_INPUT,
     EXIT_OK,
     EXIT_OTHER,
@@ -16,6 +17,9 @@ from optreserve.cli.common import (
     _pct,
     _table,
     _warn,
+    clean,
+    num,
+    plural,
 )
 from optreserve.cli.snapshot import _write_diagnosis
 from optreserve.errors import InfeasibleError
@@ -58,21 +62,21 @@ def cmd_retune(args) -> int:
     else:
         print("today's settings break these limits:")
         for v in prop.violations_before[:12]:
-            print(f"  {v}")
+            print(clean(f"  {v}"))
         if len(prop.violations_before) > 12:
             print(f"  ... and {len(prop.violations_before) - 12} more")
     ch = prop.changed
     if len(ch):
         rows = [[str(r.unit), str(r.area), _pct(r.droop_now_pct), _pct(r.droop_proposed_pct),
                  str(r.change), str(r.reason)] for r in ch.itertuples()]
-        print(f"{len(ch)} unit(s) to change, total droop change "
+        print(f"{plural(len(ch), 'unit')} to change, total droop change "
               f"{prop.proposal['droop_change_pct'].sum():.2f} percentage points:")
         print(_table(["unit", "area", "droop now %", "proposed %", "change", "reason"], rows,
                      {2, 3}))
     ba = prop.before_after
     rows = [[str(r.event), f"{r.settled_frequency_before_hz:.4f}",
-             f"{r.settled_frequency_after_hz:.4f}", f"{r.margin_before_hz * 1000:.1f}",
-             f"{r.margin_after_hz * 1000:.1f}"]
+             f"{r.settled_frequency_after_hz:.4f}", num(r.margin_before_hz * 1000),
+             num(r.margin_after_hz * 1000)]
             + ([f"{r.loading_before_pct:.1f}", f"{r.loading_after_pct:.1f}"]
                if "loading_before_pct" in ba.columns else [])
             for r in ba.itertuples()]
@@ -133,7 +137,7 @@ def cmd_simulate(args) -> int:
     if args.quiet:
         return EXIT_OK
     for w in sim.warnings:
-        print(f"warning: {w}", file=sys.stderr)
+        print(clean(f"warning: {w}"), file=sys.stderr)
     sm = sim.summary
     ok = {True: "ok", False: "NO", None: "-"}
     rows = [[str(r.event), f"{r.size_mw:+.1f}", f"{r.nadir_hz:.3f}", f"{r.nadir_time_s:.2f}",
@@ -141,12 +145,13 @@ def cmd_simulate(args) -> int:
              f"{r.settled_frequency_hz:.4f}", ok[r.settled_ok], ok[r.nadir_ok], ok[r.rocof_ok]]
             for r in sm.itertuples()]
     print(f"case {case.name!r}" + (f", period {sim.period}" if sim.period else "")
-          + f": {len(sm)} event(s) simulated")
+          + f": {plural(len(sm), 'event')} simulated")
     print(_table(["event", "size MW", "nadir Hz", "at s", "RoCoF Hz/s", "dP fn/2H",
                   "settles Hz", "settled", "nadir", "RoCoF"], rows, set(range(1, 7))))
     broken = int(sm[["settled_ok", "nadir_ok", "rocof_ok"]].eq(False).any(axis=1).sum())
     if broken:
-        print(f"{broken} event(s) break a limit in the simulation", file=sys.stderr)
+        verb = "breaks" if broken == 1 else "break"
+        print(f"{plural(broken, 'event')} {verb} a limit in the simulation", file=sys.stderr)
     print(f"wrote {out_dir}: simulation_summary.csv simulation.json and per event series_*.csv "
           "plot_*.png")
     print(CAUTION)
@@ -195,17 +200,23 @@ def cmd_sweep(args) -> int:
 
 
 def cmd_batch(args) -> int:
-    from optreserve.studies.sweep import case_folders, run_batch
+    from optreserve.studies.batch import case_writer, run_cases
+    from optreserve.studies.sweep import case_folders
 
     check_out(Path(args.out), args.force)
     folders = case_folders(Path(args.folder))
-    return _run_study(args, "batch", str(args.folder), ["case"],
-                      lambda w, sch, prog: run_batch(Path(args.folder), workers=w, scheduler=sch,
-                                                     progress=prog),
-                      {"cases": [p.name for p in folders]})
+    kept = {}
+
+    def run(w, sch, prog):
+        table, payloads = run_cases(Path(args.folder), workers=w, scheduler=sch, progress=prog)
+        kept.update(payloads)
+        return table
+
+    return _run_study(args, "batch", str(args.folder), ["case"], run,
+                      {"cases": [p.name for p in folders]}, extra=case_writer(kept))
 
 
-def _run_study(args, name, title, keys, run, meta) -> int:
+def _run_study(args, name, title, keys, run, meta, extra=None) -> int:
     from optreserve.studies.sweep import ENGINE, default_workers, write_study
 
     if args.workers is not None and args.workers < 1:
@@ -217,29 +228,38 @@ def _run_study(args, name, title, keys, run, meta) -> int:
     wall = time.perf_counter() - t0
     meta = {"command": name, "case": title, **meta, "engine": ENGINE,
             "workers": workers, "scheduler": args.scheduler, "wall_s": round(wall, 3)}
-    files = write_study(table, Path(args.out), name, keys, meta, force=args.force)
+    files = write_study(table, Path(args.out), name, keys, meta, force=args.force,
+                        extra=extra)
     counts = table["status"].value_counts()
+    what = "case" if name == "batch" else "point"
     if not args.quiet:
         where = f"on {args.scheduler}" if args.scheduler else (
             "serially" if workers == 1 else f"on {workers} local workers")
-        print(f"{name}: {len(table)} points ("
+        print(f"{name}: {len(table)} {what}{'s' if len(table) != 1 else ''} ("
               + ", ".join(f"{int(n)} {k}" for k, n in counts.items()) + f") in {wall:.1f} s "
               f"{where}")
-        print(f"wrote {args.out}: " + " ".join(files))
+        print(clean(f"wrote {args.out}: " + " ".join(files)))
         print(CAUTION)
+    if name == "batch":  # every case is a case someone needs: one failure is a failure
+        bad = table[~table["status"].isin(("optimal", "time_limit"))]
+        if len(bad):
+            print(f"{len(bad)} case{'s' if len(bad) != 1 else ''} did not solve: "
+                  + ", ".join(clean(f"{r.case} ({r.status})") for r in bad.itertuples()),
+                  file=sys.stderr)
+            return EXIT_CASES_FAILED
+        return EXIT_OK
     return EXIT_OK if (table["status"] != "error").any() else EXIT_OTHER
 
 
 def _add_study_parsers(sub) -> None:
-    def engine_args(p):
+    def engine_args(p, out_help):
         g = p.add_mutually_exclusive_group()
         g.add_argument("--workers", type=int, metavar="N", help="local worker processes (Dask "
                        "LocalCluster, one thread each); default: the number of CPU cores; 1 "
                        "runs serially in this process")
         g.add_argument("--scheduler", metavar="ADDRESS", help="run on an existing Dask "
                        "cluster, e.g. tcp://10.0.0.5:8786 (its workers need optreserve)")
-        p.add_argument("--out", required=True, metavar="DIR", help="folder for the table, the "
-                       "plot and the JSON summary")
+        p.add_argument("--out", required=True, metavar="DIR", help=out_help)
         p.add_argument("--force", action="store_true", help="write into a non-empty --out "
                        "folder (only optreserve's files change)")
         p.add_argument("--quiet", action="store_true", help="print nothing on success")
@@ -255,13 +275,17 @@ def _add_study_parsers(sub) -> None:
                         " max_nadir_deviation_hz), event:NAME.size_mw, link:NAME.limit_mw, "
                         "area:NAME.min_own_reserve_mw or price_scale; a range (STOP included) or "
                         "KEY=V1,V2,...; repeat for a grid")
-    engine_args(w)
+    engine_args(w, "folder for sweep.csv, the cost plot sweep.png (one or two varied keys) "
+                "and sweep.json")
     w.set_defaults(func=cmd_sweep)
 
     b = sub.add_parser("batch", help="solve every case folder inside a folder (e.g. one per day)",
                        description="Solve every sub-folder holding a case.toml (sorted by name) "
-                                   "and write batch.csv (one row per case) and batch.json; each "
-                                   "worker reads its case from the folder.")
+                                   "and write, inside --out, one result folder per case (what "
+                                   "solve --out writes; diagnosis.csv for an infeasible case), "
+                                   "batch.csv (one row per case) and batch.json; each worker "
+                                   "reads its case from the folder. Exit code 5 when a case "
+                                   "did not solve.")
     b.add_argument("folder", metavar="DIR", help="folder of case folders")
-    engine_args(b)
+    engine_args(b, "folder for batch.csv, batch.json and one result folder per case")
     b.set_defaults(func=cmd_batch)

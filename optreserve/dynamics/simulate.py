@@ -432,9 +432,7 @@ class Simulation:
         t0 = time.perf_counter()
         out = Path(out_dir)
         with staged_output(out, force) as tmp:
-            write_table(self.summary, tmp / SUMMARY_FILE)
-            text = (tmp / SUMMARY_FILE).read_text(encoding="utf-8")
-            (tmp / SUMMARY_FILE).write_text(f"# {CAUTION}\n" + text, encoding="utf-8")
+            write_table(self.summary, tmp / SUMMARY_FILE)  # header first; caution in JSON
             names = file_names(list(self.series))
             for ev, stem in names.items():
                 write_table(self.series[ev], tmp / f"series_{stem}.csv")

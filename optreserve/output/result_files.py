@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from optreserve.output.cells import unescape
 from optreserve.errors import CaseError, Problem
 from optreserve.output.schemas import RETUNE_NUMBERS, SUMMARY_NUMBERS, Column
 
@@ -152,8 +153,8 @@ def _typed(path: Path, raw: pd.DataFrame, row_lines: np.ndarray, schema: dict[st
         c = schema.get(name)
         kind = c.kind if c is not None else extra_kind
         s = raw[name].astype(str).str.strip()
-        if kind == "text":
-            out[name] = s.to_numpy(object)
+        if kind == "text":  # our writer quotes formula-like cells (output/cells.py): undo it
+            out[name] = unescape(s.to_numpy(object))
         elif kind == "bool":
             low = s.str.lower()
             is_t, is_f = low.isin(_TRUE).to_numpy(), low.isin(_FALSE).to_numpy()

@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 
 from optreserve import __version__
+from optreserve.output.cells import float_text, needs_text, safe_header, spreadsheet_safe
 from optreserve.output.staging import staged_output
 
 CAUTION = ("Planning study only, not an operating instruction: the applicable grid code, the "
@@ -245,12 +246,14 @@ def _num(v):
     return None if not np.isfinite(v) else v
 
 
-def write_table(df: pd.DataFrame, path: Path) -> None:
+def write_table(df: pd.DataFrame, path: Path, exact=()) -> None:
     """Stable CSV: fixed column order, 6 decimals, no negative zero, true/false booleans,
-    empty cells for missing values. The whole table is formatted by one string-formatting
-    call (pandas' float formatting is the slow part of writing a day of results)."""
+    empty cells for missing values; cells written so they read back the same and text no
+    spreadsheet evaluates (output/cells.py; `exact`: columns echoing an input, every
+    significant digit kept). The whole table is formatted by one string-formatting call
+    (pandas' float formatting is the slow part of writing a day of results)."""
     n = len(df)
-    header = [str(c) for c in df.columns]
+    header = safe_header([str(c) for c in df.columns])
     grid = np.empty((n, len(header)), dtype=object)
     specs, text_cols = [], []
     for k, c in enumerate(df.columns):
@@ -260,12 +263,16 @@ def write_table(df: pd.DataFrame, path: Path) -> None:
             grid[:, k] = np.where(v, "true", "false")
             specs.append("%s")
         elif pd.api.types.is_float_dtype(col):
-            r = np.round(v.astype(float), 6) + 0.0  # + 0.0 turns -0.0 into 0.0
+            vf = v.astype(float)
+            full = needs_text(vf, c in exact)  # 1e308 is not inf; 1e-07 is not 0.000000
+            with np.errstate(over="ignore", invalid="ignore"):
+                r = np.where(full, 0.0, np.round(vf, 6)) + 0.0  # + 0.0: -0.0 becomes 0.0
             nan = np.isnan(r)
-            if nan.any():  # formatted here so that missing values become empty cells
+            if nan.any() or full.any():  # formatted here: missing values become empty cells
                 cells = np.array((("%.6f\n" * n) % tuple(r.tolist())).split("\n")[:-1],
                                  dtype=object)
                 cells[nan] = ""
+                cells[full] = [float_text(x) for x in vf[full]]
                 grid[:, k] = cells
                 specs.append("%s")
             else:
@@ -276,6 +283,9 @@ def write_table(df: pd.DataFrame, path: Path) -> None:
             cells = col.astype(str).to_numpy(dtype=object)
             if missing.any():
                 cells[missing] = ""
+            if v.dtype == object:  # text (not numbers) that a spreadsheet would evaluate
+                is_text = np.array([isinstance(x, str) for x in v], dtype=bool)
+                cells = np.where(is_text, spreadsheet_safe(cells), cells)
             grid[:, k] = cells
             text_cols.append(cells)
             specs.append("%s")

@@ -51,4 +51,7 @@ def _move_into(tmp: Path, out: Path) -> None:
         os.replace(tmp, out)
         return
     for f in sorted(tmp.iterdir()):
-        os.replace(f, out / f.name)
+        if f.is_dir() and (out / f.name).is_dir():  # a sub-folder (a batch's case): merge
+            _move_into(f, out / f.name)
+        else:
+            os.replace(f, out / f.name)

@@ -18,8 +18,10 @@ from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
 from optreserve.solver.backends import Outcome, solve_program
 from optreserve.solver.diagnose import diagnose
+from optreserve.solver.outcome import TIME_STATUSES, NoAllocationYet, best_verified, failed_pass
 from optreserve.solver.prices import _attach_prices
 from optreserve.solver.readback import _make_result, dispatch_view, exact_points, period_values
+from optreserve.solver.timing import Clock, close_total
 
 # Dead-band fixed point: stop when every settled guess moves less than this.
 FIXED_POINT_TOL_HZ = 1e-7
@@ -45,6 +47,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
       not with extend, whose objective is not the cost).
     Raises InfeasibleError (with a diagnosis) when no allocation meets the limits."""
     t_start = time.perf_counter()
+    clock = Clock()  # verify, nadir_check, prices: timings_s keys beside build and solve
     time_limit = time_limit if time_limit is not None else case.solver.time_limit_s
     mip_gap = mip_gap if mip_gap is not None else case.solver.mip_gap
     opts = dict(time_limit=time_limit, mip_gap=mip_gap, verbose=verbose)
@@ -58,6 +61,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     iterations = 0
     history = []
     retried = False
+    timed_out = False  # stopped by the time budget before the passes converged
     nadir = {"scale": None, "rounds": 0, "checked": False, "worst_hz": None}
     while True:
         iterations += 1
@@ -72,8 +76,8 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         if time_limit is not None:  # the dead-band iterations share one time budget
             left = time_limit - (time.perf_counter() - t_start)
             if history and left <= 0:
-                lp, info, out = history[-1]
-                points = None
+                lp, info, out, points = best_verified(case, history, time_limit)
+                timed_out = True
                 break
             opts["time_limit"] = max(left, 0.01)
         start = history[-1][2].x if history and history[-1][0].n_cols == lp.n_cols else None
@@ -102,54 +106,55 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
             points = None
             break
         if out.x is None:
-            if history:  # a later dead-band iteration ran out of time: keep the last answer
-                lp, info, out = history[-1]
-                points = None
+            if out.status not in TIME_STATUSES:  # HiGHS failed: say so, in any pass
+                raise failed_pass(out, iterations) if history else SolverError(
+                    f"HiGHS stopped without a usable allocation ({out.status}: {out.message})")
+            if history:  # a later dead-band pass ran out of time: the best verified answer
+                lp, info, out, points = best_verified(case, history, time_limit)
+                timed_out = True
                 break
-            hint = (f"; no allocation found within the time limit of {time_limit:g} s: raise "
-                    "--time-limit" if out.status == "no_solution" else "")
-            raise SolverError(f"HiGHS stopped without a usable allocation ({out.status}: "
-                              f"{out.message}){hint}")
+            raise NoAllocationYet.within(time_limit, out.message)
         info.hz = dispatch_view(info.hz, lp, out.x)
         history.append((lp, info, out))
         progress.step("recomputing settled points independently")
-        points = exact_points(info, lp, out.x)
+        with clock("verify"):
+            points = exact_points(info, lp, out.x)
         exact = np.abs(points.deviation_hz)
         live = info.hz.dP > 0
         if not _needs_fixed_point(info):
             # no row depends on the settled guess: the exact deviation is the model's own
             info.x_hat = np.where(live, exact, info.x_hat)
-            if _nadir_round(case, info, lp, out, nadir):
+            if clock.run("nadir_check", _nadir_round, case, info, lp, out, nadir):
                 continue
             break
         if np.all(np.abs(exact - info.x_hat)[live] <= FIXED_POINT_TOL_HZ) or (
                 iterations >= FIXED_POINT_MAX_ITER):
-            if _nadir_round(case, info, lp, out, nadir):
+            if clock.run("nadir_check", _nadir_round, case, info, lp, out, nadir):
                 x_hat = np.where(live & np.isfinite(exact), exact, info.x_hat)
                 continue
             break
         x_hat = np.where(live & np.isfinite(exact), exact, info.x_hat)
         points = None
 
-    result = _make_result(case, lp, info, out, relax, points)
+    with clock("verify"):
+        result = _make_result(case, lp, info, out, relax, points, check_model=not timed_out)
     result.nadir_check = {k: nadir[k] for k in ("checked", "rounds", "worst_hz")}
     # our own tie-break price on headroom (model.TIE_BREAK_PER_MW_H) makes HiGHS remark on
     # "excessively small costs": that one is expected and not passed on
     result.solver_warnings = list(dict.fromkeys(
         w for _, _, o in history for w in o.warnings if "small costs" not in w))
     result.iterations = iterations
-    t_price = _attach_prices(result, lp, info, out)
-    t_build += t_price[0]
-    t_solve += t_price[1]
+    with clock("prices"):  # its extra LP's build and solve included
+        _attach_prices(result, lp, info, out)
     if incremental and extend is None and not relax:
         from optreserve.solver.incremental import attach_incremental
 
-        t_inc = attach_incremental(result, case, hz, info, out.x, price_step, time_limit,
-                                   nadir["scale"])
-        t_build += t_inc[0]
-        t_solve += t_inc[1]
-    result.timings_s.update(read=case.read_time_s, build=t_build, solve=t_solve, write=0.0,
-                            total=time.perf_counter() - t_start + case.read_time_s)
+        with clock("incremental_prices"):  # the MILP re-solves at the grown event sizes
+            attach_incremental(result, case, hz, info, out.x, price_step, time_limit,
+                               nadir["scale"])
+    result.timings_s.update(read=case.read_time_s, build=t_build, solve=t_solve, **clock,
+                            write=0.0)
+    close_total(result.timings_s, time.perf_counter() - t_start + case.read_time_s)
     return result
 
 

@@ -1,13 +1,16 @@
-"""Uniform-droop comparison: what a simple policy would cost and which limits it would break.
+"""Uniform-droop comparison: what a simple policy would cost and which limits it would break,
+with today's settings reported beside it.
 
-The policy: every capable provider runs at one droop, its headroom sized by the full-activation
-rule (`r = (F_act - d)^+ K`, capped at the room it has). Units with `droop_now_pct` keep
-today's setting; the others share one droop `s`, the largest inside every one of their bands
-that meets all limits (settled deviation, links, own reserve, nadir, full activation). If no
-such droop exists, the one breaking the fewest limits is taken, the largest among equals.
+The policy: every capable provider runs at one droop `s` (clipped into a unit's band where the
+bands do not overlap), its headroom sized by the full-activation rule (`r = (F_act - d)^+ K`,
+capped at the room it has). `s` is the least-cost candidate that meets all limits (settled
+deviation, links, own reserve, nadir, full activation); if none does, the one breaking the
+fewest limits, the cheapest among equals. Today's settings (droop_now_pct, the allocation
+retune starts from: studies/today.py) are a separate row, never mixed into the policy.
 
-Settled points and flows come from the independent calculation (settle.py), not from the
-optimiser. docs/formulation.md ("Uniform-droop comparison") says the same in maths.
+Broken limits come from the one evaluation of verify/breaks.py (independent settled points
+and DC flows, not the optimiser). docs/formulation.md ("Uniform-droop comparison") says the
+same in maths.
 """
 
 from __future__ import annotations
@@ -21,31 +24,34 @@ from optreserve.case.data import Case
 from optreserve.model.horizon import Horizon, prepare
 from optreserve.model.nadir import nadir_shortfall
 from optreserve.output.results import CAUTION, Result
+from optreserve.studies.today import today
+from optreserve.verify.breaks import evaluate, what_breaks
 
 # grid of the common droop when the case has no steps_pct
 GRID_STEP_PCT = 0.01
 MAX_CANDIDATES = 400
-# a limit counts as broken beyond these (the same as solve's verification)
-SETTLED_TOL_HZ = 1e-5
-LINK_TOL_MW = 1e-3
+# headroom the full-activation rule asks for beyond the room counts from this (MW)
 RESERVE_TOL_MW = 1e-6
+TODAY_RULE = "droop_now_pct as the case states it, headroom by the full-activation rule"
 
 
 @dataclass
 class Comparison:
-    """summary: one row per policy (uniform, optimum); violations: one row per broken limit of
-    the uniform policy; allocation: the uniform policy per unit (and period)."""
+    """summary: one row per policy (uniform, today when the case gives droop_now_pct,
+    optimum); violations: one row per broken limit of the uniform policy; allocation: the
+    uniform policy per unit (and period); today_violations: those of today's settings."""
 
     summary: pd.DataFrame
     violations: pd.DataFrame
     allocation: pd.DataFrame
-    uniform_droop_pct: float | None  # the shared droop (None: every unit kept droop_now_pct)
+    uniform_droop_pct: float | None  # the shared droop (None: no capable unit)
     rule: str
+    today_violations: pd.DataFrame | None = None
 
     def to_json(self) -> dict:
         s = self.summary.set_index("policy")
         cost = "cost_per_h" if "cost_per_h" in s.columns else "cost_total"
-        return {
+        doc = {
             "rule": self.rule,
             "uniform_droop_pct": self.uniform_droop_pct,
             "cost_column": cost,
@@ -54,33 +60,50 @@ class Comparison:
             "saving": _f(s.loc["optimum", "saving"]),
             "saving_pct": _f(s.loc["optimum", "saving_pct"]),
             "uniform_limits_broken": int(s.loc["uniform", "limits_broken"]),
-            "violations": [{k: (_f(v) if isinstance(v, float) else v) for k, v in r.items()}
-                           for r in self.violations.to_dict(orient="records")],
+            "violations": _records(self.violations),
+            "today": None,
             "caution": CAUTION,
         }
+        if self.today_violations is not None:
+            doc["today"] = {"rule": TODAY_RULE, "cost": _f(s.loc["today", cost]),
+                            "limits_broken": int(s.loc["today", "limits_broken"]),
+                            "violations": _records(self.today_violations)}
+        return doc
 
     def lines(self) -> list[str]:
         """A short plain-text report."""
         j = self.to_json()
         unit = " per hour" if j["cost_column"] == "cost_per_h" else " in total"
         out = [f"uniform droop: {self.rule}; cost {j['uniform_cost']:.2f}{unit}"]
-        v = self.violations
-        if len(v):
-            out.append(f"  breaks {len(v)} limit(s):")
-            for r in v.head(10).itertuples():
-                when = f" in {r.period}" if "period" in v.columns and r.period else ""
-                after = f" after {r.event}" if r.event and r.event != r.element else ""
-                what = (f"{r.value:.4g} {r.quantity_unit}" if r.limit == "nadir_energy" else
-                        f"{r.value:.4g} against {r.limit_value:.4g} {r.quantity_unit}")
-                out.append(f"    {r.limit} {r.element}{after}{when}: {what}")
-            if len(v) > 10:
-                out.append(f"    ... and {len(v) - 10} more (comparison.json)")
-        else:
-            out.append("  meets every limit")
+        out += _broken_lines(self.violations)
+        if j["today"] is not None:
+            out.append(f"today's settings ({TODAY_RULE}): cost {j['today']['cost']:.2f}"
+                       f"{unit}")
+            out += _broken_lines(self.today_violations)
         pct = "" if j["saving_pct"] is None else f" ({j['saving_pct']:.1f} %)"
         out.append(f"optimum: cost {j['optimum_cost']:.2f}{unit}; saving {j['saving']:.2f}"
                    f"{unit}{pct} against the uniform droop")
         return out
+
+
+def _records(v: pd.DataFrame) -> list[dict]:
+    return [{k: (_f(x) if isinstance(x, float) else x) for k, x in r.items()}
+            for r in v.to_dict(orient="records")]
+
+
+def _broken_lines(v: pd.DataFrame) -> list[str]:
+    if not len(v):
+        return ["  meets every limit"]
+    out = [f"  breaks {len(v)} limit{'s' if len(v) != 1 else ''}:"]
+    for r in v.head(10).itertuples():
+        when = f" in {r.period}" if "period" in v.columns and r.period else ""
+        after = f" after {r.event}" if r.event and r.event != r.element else ""
+        what = (f"{r.value:.4g} {r.quantity_unit}" if r.limit == "nadir_energy" else
+                f"{r.value:.4g} against {r.limit_value:.4g} {r.quantity_unit}")
+        out.append(f"    {r.limit} {r.element}{after}{when}: {what}")
+    if len(v) > 10:
+        out.append(f"    ... and {len(v) - 10} more (comparison.json)")
+    return out
 
 
 def _f(v):
@@ -89,8 +112,8 @@ def _f(v):
 
 
 def compare_uniform(case: Case, result: Result | None = None, **solve_kw) -> Comparison:
-    """Cost and broken limits of the uniform-droop policy against the optimum (`result`, or a
-    fresh solve with `solve_kw`)."""
+    """Cost and broken limits of the uniform-droop policy and of today's settings against the
+    optimum (`result`, or a fresh solve with `solve_kw`)."""
     if result is None:
         from optreserve.solver.run import solve
 
@@ -98,35 +121,41 @@ def compare_uniform(case: Case, result: Result | None = None, **solve_kw) -> Com
     hz = prepare(case)
     u = case.units
     capable = hz.capable_b.any(axis=0)
-    now = u["droop_now_pct"].to_numpy(float)
-    fixed = capable & np.isfinite(now)
-    free = capable & ~np.isfinite(now)
     lo_b, hi_b = u["droop_min_pct"].to_numpy(float), u["droop_max_pct"].to_numpy(float)
 
     def droops(s: float) -> np.ndarray:
-        d = np.where(fixed, now, np.nan)
-        return np.where(free, np.clip(s, lo_b, hi_b), d)
+        return np.where(capable, np.clip(s, lo_b, hi_b), np.nan)
 
     best_s = None
-    if free.any():
-        lo, hi = lo_b[free].max(), hi_b[free].min()
+    if capable.any():
+        lo, hi = lo_b[capable].max(), hi_b[capable].min()
         if lo > hi:  # the bands do not overlap: the shared droop is clipped into each band
-            lo, hi = lo_b[free].min(), hi_b[free].max()
+            lo, hi = lo_b[capable].min(), hi_b[capable].max()
         cands = _candidates(case, lo, hi)
-        scores = [_evaluate(case, hz, droops(s), capable)[4] for s in cands]
-        # fewest broken limits, then the largest droop (the cheapest headroom)
-        k = min(range(len(cands)), key=lambda i: (len(scores[i]), -cands[i]))
+        scores = []
+        for c in cands:
+            g, ru, rd, want = _from_droop(case, hz, droops(c), capable)
+            scores.append((len(_violations(case, hz, g, ru, rd, want)),
+                           _cost(hz, ru, rd)))
+        # fewest broken limits, then the least cost (then the largest droop)
+        k = min(range(len(cands)), key=lambda i: (scores[i][0], scores[i][1], -cands[i]))
         best_s = float(cands[k])
-        rule = f"{best_s:g} % on every capable unit" + (
-            " without droop_now_pct (today's setting elsewhere)" if fixed.any() else "")
+        rule = f"{best_s:g} % on every capable unit"
     else:
-        rule = "droop_now_pct on every capable unit"
+        rule = "no capable unit"
+    gain, r_up, r_dn, want = _from_droop(case, hz, droops(best_s if best_s is not None
+                                                          else np.nan), capable)
+    viol = _violations(case, hz, gain, r_up, r_dn, want)
     s_units = droops(best_s if best_s is not None else np.nan)
-    gain, r_up, r_dn, cost_t, viol = _evaluate(case, hz, s_units, capable)
-    hours = hz.hours
-    uni_cost = float((cost_t * hours[:, None]).sum())
+    now = today(case, hz)
+    has_today = bool(np.isfinite(now.droop_pct).any())
+    now_viol = _violations(case, hz, now.gain, now.r_up, now.r_dn,
+                           now.gain * hz.a_act[None, :]) if has_today else []
+    uni_cost = _cost(hz, r_up, r_dn)
+    now_cost = _cost(hz, now.r_up, now.r_dn)
     opt_cost = result.objective_total if case.is_horizon else result.objective_per_h
     cost_col = "cost_total" if case.is_horizon else "cost_per_h"
+
     def peak(r):
         return float(r.sum(axis=1).max(initial=0.0))
 
@@ -138,20 +167,20 @@ def compare_uniform(case: Case, result: Result | None = None, **solve_kw) -> Com
         opt_up, opt_dn = float(opt_alloc["headroom_up_mw"].sum()), float(
             opt_alloc["headroom_down_mw"].sum())
     saving = uni_cost - opt_cost
-    summary = pd.DataFrame({
-        "policy": ["uniform", "optimum"],
-        "droop_rule": [rule, "optimised per unit"],
-        cost_col: [uni_cost, opt_cost],
-        "units_providing": [int((gain > 0).any(axis=0).sum()),
-                            int(opt_alloc.loc[opt_alloc["provides"], "unit"].nunique())],
-        "headroom_up_mw": [peak(r_up), opt_up],
-        "headroom_down_mw": [peak(r_dn), opt_dn],
-        "limits_broken": [len(viol), 0],
-        "saving": [0.0, saving],
-        "saving_pct": [0.0, saving / uni_cost * 100.0 if uni_cost > 0 else np.nan],
-    })
+    rows = [("uniform", rule, uni_cost, int((gain > 0).any(axis=0).sum()), peak(r_up),
+             peak(r_dn), len(viol), 0.0, 0.0)]
+    if has_today:
+        rows.append(("today", TODAY_RULE, now_cost, int((now.gain > 0).any(axis=0).sum()),
+                     peak(now.r_up), peak(now.r_dn), len(now_viol), np.nan, np.nan))
+    rows.append(("optimum", "optimised per unit", opt_cost,
+                 int(opt_alloc.loc[opt_alloc["provides"], "unit"].nunique()), opt_up, opt_dn,
+                 0, saving, saving / uni_cost * 100.0 if uni_cost > 0 else np.nan))
+    summary = pd.DataFrame(rows, columns=["policy", "droop_rule", cost_col, "units_providing",
+                                          "headroom_up_mw", "headroom_down_mw",
+                                          "limits_broken", "saving", "saving_pct"])
     cols = ["limit", "element", "event", "period", "value", "limit_value", "quantity_unit"]
     violations = pd.DataFrame(viol, columns=cols)
+    today_violations = pd.DataFrame(now_viol, columns=cols)
     T, N = gain.shape
     alloc = {"unit": np.tile(u["unit"].to_numpy(object), T),
              "area": np.tile(u["area"].to_numpy(object), T)}
@@ -159,12 +188,20 @@ def compare_uniform(case: Case, result: Result | None = None, **solve_kw) -> Com
         alloc["period"] = np.repeat(np.array(case.periods, dtype=object), N)
     else:
         violations = violations.drop(columns="period")
+        today_violations = today_violations.drop(columns="period")
     alloc.update({"provides": (gain > 0).reshape(-1),
                   "droop_pct": np.where(gain > 0, np.broadcast_to(s_units, (T, N)),
                                         np.nan).reshape(-1),
                   "gain_mw_per_hz": gain.reshape(-1), "headroom_up_mw": r_up.reshape(-1),
-                  "headroom_down_mw": r_dn.reshape(-1), "cost_per_h": cost_t.reshape(-1)})
-    return Comparison(summary, violations, pd.DataFrame(alloc), best_s, rule)
+                  "headroom_down_mw": r_dn.reshape(-1),
+                  "cost_per_h": (hz.price_up * r_up + hz.price_dn * r_dn).reshape(-1)})
+    return Comparison(summary, violations, pd.DataFrame(alloc), best_s, rule,
+                      today_violations if has_today else None)
+
+
+def _cost(hz: Horizon, r_up, r_dn) -> float:
+    """Headroom cost over the horizon (per hour for a snapshot), like the optimum's."""
+    return float(((hz.price_up * r_up + hz.price_dn * r_dn) * hz.hours[:, None]).sum())
 
 
 def _candidates(case: Case, lo: float, hi: float) -> np.ndarray:
@@ -181,9 +218,9 @@ def _candidates(case: Case, lo: float, hi: float) -> np.ndarray:
     return np.unique(np.r_[grid, lo])[::-1]
 
 
-def _evaluate(case: Case, hz: Horizon, droop_pct: np.ndarray, capable: np.ndarray):
-    """Gains, headroom (T, N), cost per hour (T, N) and broken limits of one set of droops
-    (NaN = no response), recalculated independently (settle.py)."""
+def _from_droop(case: Case, hz: Horizon, droop_pct: np.ndarray, capable: np.ndarray):
+    """Gains and headroom (T, N) of one set of droops (NaN = no response), headroom by the
+    full-activation rule capped at the room; also what the rule asks for (`want`)."""
     with np.errstate(invalid="ignore"):
         K = np.where(capable & np.isfinite(droop_pct),
                      case.gain_from_droop(np.where(np.isfinite(droop_pct), droop_pct, 1.0)), 0.0)
@@ -191,50 +228,56 @@ def _evaluate(case: Case, hz: Horizon, droop_pct: np.ndarray, capable: np.ndarra
     want = hz.a_act[None, :] * gain  # full-activation headroom
     r_up = np.where(hz.need_up[:, None], np.minimum(want, hz.R_up), 0.0)
     r_dn = np.where(hz.need_dn[:, None], np.minimum(want, hz.R_dn), 0.0)
-    cost = hz.price_up * r_up + hz.price_dn * r_dn
-    from optreserve.solver.readback import (
-        evaluate_allocation,  # settle.py: scalar balance and DC flows
-    )
+    return gain, r_up, r_dn, want
 
-    pts = evaluate_allocation(case, hz, gain, r_up, r_dn)
-    labels = [str(p) for p in case.periods] if case.is_horizon else [""] * hz.T
-    units, areas = case.units["unit"].to_numpy(object), case.areas["area"].to_numpy(object)
-    links = case.links["link"].to_numpy(object)
+
+# verify/breaks.py families under the names this comparison has always reported
+_LIMIT = {"event": "settled_deviation", "link": "link", "area": "own_reserve",
+          "nadir": "nadir_energy"}
+
+
+def _violations(case: Case, hz: Horizon, gain, r_up, r_dn, want) -> list[tuple]:
+    """Broken limits of one allocation (verify/breaks.py, with F = the settled limit) plus the
+    full-activation rule, as rows (limit, element, event, period, value, limit_value, unit)."""
     F = case.limits.max_settled_deviation_hz
-    viol = []
-    dev = np.abs(pts.deviation_hz)
-    for m in np.nonzero(~(dev <= F + SETTLED_TOL_HZ) & (hz.dP > 0))[0]:
-        viol.append(("settled_deviation", hz.inst_name[m], hz.inst_name[m],
-                     labels[hz.inst_t[m]], float(dev[m]), F, "Hz"))
-    lim = hz.Fmax[hz.inst_t]
-    over = np.abs(pts.flow_after_mw) - lim > LINK_TOL_MW * np.maximum(1.0, lim / 100.0)
-    for m, li in zip(*np.nonzero(over)):
-        viol.append(("link", links[li], hz.inst_name[m], labels[hz.inst_t[m]],
-                     float(abs(pts.flow_after_mw[m, li])), float(lim[m, li]), "MW"))
-    held = np.zeros_like(hz.own)
-    np.add.at(held.T, hz.area, r_up.T)
-    for t, a in zip(*np.nonzero(held < hz.own - RESERVE_TOL_MW)):
-        viol.append(("own_reserve", areas[a], "", labels[t], float(held[t, a]),
-                     float(hz.own[t, a]), "MW"))
+    nadir = None
+    if case.limits.max_nadir_deviation_hz is not None:
+        # what a provider delivers by the nadir: its headroom, but no more than its droop asks
+        # for at the nadir limit, K (N - d)^+ (the model's nadir rows, formulation section 15)
+        reach = gain * np.maximum(case.limits.max_nadir_deviation_hz - hz.d_hz, 0.0)[None, :]
+        nadir = nadir_shortfall(case, hz, np.minimum(r_up, reach), np.minimum(r_dn, reach))
+    pts = evaluate(case, hz, gain, r_up, r_dn)
+    br = what_breaks(case, hz, gain, r_up, r_dn, F, nadir, pts)
+    link_pos = {str(x): k for k, x in enumerate(case.links["link"])}
+    area_pos = {str(x): k for k, x in enumerate(case.areas["area"])}
+    periods = [str(p) for p in case.periods] if case.is_horizon else [""]
+    t_of = {p: k for k, p in enumerate(periods)}
+    out = []
+    for r in br.itertuples():
+        t = t_of[r.period]
+        if r.family == "event":
+            out.append((_LIMIT["event"], r.element, r.event, r.period, float(r.excess_hz + F),
+                        F, "Hz"))
+        elif r.family == "link":
+            lim = float(hz.Fmax[t, link_pos[r.element]])
+            out.append(("link", r.element, r.event, r.period, float(r.over_mw + lim), lim,
+                        "MW"))
+        elif r.family == "area":
+            own = float(hz.own[t, area_pos[r.element]])
+            out.append(("own_reserve", r.element, "", r.period, own - float(r.short_mw), own,
+                        "MW"))
+        else:
+            out.append(("nadir_energy", r.element, r.event, r.period, float(r.short_mw), 0.0,
+                        "MW s short"))
+    units = case.units["unit"].to_numpy(object)
     short = (want > hz.R_up + RESERVE_TOL_MW) & hz.need_up[:, None] | (
         want > hz.R_dn + RESERVE_TOL_MW) & hz.need_dn[:, None]
     for t, i in zip(*np.nonzero(short & (gain > 0))):
-        viol.append(("full_activation", units[i], "", labels[t], float(want[t, i]),
-                     float(min(hz.R_up[t, i] if hz.need_up[t] else np.inf,
-                               hz.R_dn[t, i] if hz.need_dn[t] else np.inf)), "MW"))
-    if case.limits.max_nadir_deviation_hz is not None:
-        viol += _nadir_violations(case, hz, gain, r_up, r_dn, labels)
-    return gain, r_up, r_dn, cost, viol
-
-
-def _nadir_violations(case, hz, gain, r_up, r_dn, labels):
-    """The nadir energy rows of the model (formulation.md section 15): what a provider
-    delivers by the nadir is its headroom, but no more than its droop asks for at the nadir
-    limit, K (N - d)^+. A row short by more than round-off is a broken limit (MW s short)."""
-    reach = gain * np.maximum(case.limits.max_nadir_deviation_hz - hz.d_hz, 0.0)[None, :]
-    short = nadir_shortfall(case, hz, np.minimum(r_up, reach), np.minimum(r_dn, reach))
-    out = []
-    for m in np.nonzero(np.isfinite(short) & (hz.dP > 0) & (short > 1e-6))[0]:
-        out.append(("nadir_energy", hz.inst_name[m], hz.inst_name[m], labels[hz.inst_t[m]],
-                    float(short[m]), 0.0, "MW s short"))
-    return out
+        out.append(("full_activation", units[i], "", periods[t], float(want[t, i]),
+                    float(min(hz.R_up[t, i] if hz.need_up[t] else np.inf,
+                              hz.R_dn[t, i] if hz.need_dn[t] else np.inf)), "MW"))
+    # the order this comparison has always used: settled, links, own reserve, full
+    # activation, nadir
+    order = {"settled_deviation": 0, "link": 1, "own_reserve": 2, "full_activation": 3,
+             "nadir_energy": 4}
+    return sorted(out, key=lambda v: order[v[0]])

@@ -24,6 +24,8 @@ from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
 from optreserve.solver.readback import evaluate_allocation
 from optreserve.solver.run import solve
+from optreserve.studies.today import Today, today
+from optreserve.verify.breaks import describe, what_breaks
 
 # Continuous droop bands are searched on this grid (plus today's setting) in a retune.
 GRID_PCT = 0.1
@@ -72,63 +74,13 @@ class Proposal:
         return self.result.write(out_dir, force=force)
 
 
-# ------------------------------------------------------------------ today's settings
-@dataclass(frozen=True)
-class Today:
-    droop_pct: np.ndarray  # (N,) NaN: not providing today
-    gain: np.ndarray  # (T, N) responding gain per period
-    r_up: np.ndarray  # (T, N) headroom it holds (sized by the full-activation rule, capped)
-    r_dn: np.ndarray
-
-
-def today(case: Case, hz: Horizon) -> Today:
-    """Today's settings as the case states them: droop_now_pct where given (and the unit may
-    provide), headroom sized by the full-activation rule but no more than the unit's room."""
-    now = case.units["droop_now_pct"].to_numpy(float)
-    provides = case.unit_matrix("provides").astype(bool)
-    K = np.where(np.isnan(now), 0.0, case.gain_from_droop(np.where(np.isnan(now), 1.0, now)))
-    K = np.where(provides.any(axis=0), K, 0.0)  # a unit that may not provide has no setting
-    gain = K[None, :] * provides
-    need = gain * hz.a_act[None, :]
-    r_up = np.where(hz.need_up[:, None] | (hz.own[:, hz.area] > 0), np.minimum(need, hz.R_up),
-                    0.0)
-    r_dn = np.where(hz.need_dn[:, None], np.minimum(need, hz.R_dn), 0.0)
-    return Today(np.where(K > 0, now, np.nan), gain, r_up, r_dn)
-
-
+# ------------------------------------------------------------------ what breaks
 def violations(case: Case, hz: Horizon, gain, r_up, r_dn, limit_hz: float) -> list[str]:
-    """Every limit the allocation breaks, recomputed independently, in words."""
-    out = []
-    pts = evaluate_allocation(case, hz, gain, r_up, r_dn)
-    labels = [str(p) for p in case.periods] if case.is_horizon else [""]
-
-    def when(m):
-        return f" in period {labels[hz.inst_t[m]]}" if case.is_horizon else ""
-
-    dev = np.abs(pts.deviation_hz)
-    for m in np.nonzero(dev > limit_hz + 1e-6)[0]:
-        what = ("no settled point" if not np.isfinite(dev[m]) else
-                f"settles {dev[m] * 1000:.1f} mHz from nominal (limit {limit_hz * 1000:.0f})")
-        out.append(f"event {hz.inst_name[m]}{when(m)}: {what}")
-    if hz.F0.shape[1]:
-        over = np.abs(pts.flow_after_mw) - hz.Fmax[hz.inst_t]
-        link_ids = [str(x) for x in case.links["link"]]
-        for m, li in zip(*np.nonzero(over > 1e-3)):
-            out.append(f"link {link_ids[li]} after {hz.inst_name[m]}{when(m)}: "
-                       f"{over[m, li]:.1f} MW over its limit")
-    held = np.zeros_like(hz.own)
-    for a in range(hz.own.shape[1]):
-        held[:, a] = r_up[:, hz.area == a].sum(axis=1)
-    for t, a in zip(*np.nonzero(held < hz.own - 1e-6)):
-        per = f" in period {labels[t]}" if case.is_horizon else ""
-        out.append(f"area {case.areas['area'].iloc[a]}{per}: own reserve "
-                   f"{hz.own[t, a] - held[t, a]:.1f} MW short")
-    if case.limits.max_nadir_deviation_hz is not None:
-        short = nadir_shortfall(case, hz, r_up, r_dn)
-        for m in np.nonzero(short > 1e-6)[0]:
-            out.append(f"event {hz.inst_name[m]}{when(m)}: nadir limit needs {short[m]:.1f} "
-                       "MW s more response energy before the nadir")
-    return out
+    """Every limit the allocation breaks, recomputed independently, in words (the one
+    evaluation of verify/breaks.py, as `solve`'s diagnosis and `check` use)."""
+    nadir = (nadir_shortfall(case, hz, r_up, r_dn)
+             if case.limits.max_nadir_deviation_hz is not None else None)
+    return describe(what_breaks(case, hz, gain, r_up, r_dn, limit_hz, nadir), limit_hz)
 
 
 # ------------------------------------------------------------------ the staged model
@@ -147,7 +99,6 @@ def _retune_case(case: Case) -> Case:
 
 def with_provider_loss(case: Case, hz: Horizon) -> Horizon:
     """Every event instance again with each responding provider unavailable in turn."""
-    M = len(hz.dP)
     cand = hz.capable_b[hz.block[hz.inst_t]]  # (M, N) providers that could respond
     cand[lost_pairs(hz)] = False  # every lost unit (all of a common-mode trip)
     mm, jj = np.nonzero(cand)

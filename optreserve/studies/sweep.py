@@ -233,16 +233,6 @@ def run_point(case: Case, index: int, point: dict[str, float], engine: str = ENG
     return {"point": index, **point, **row, "solve_s": time.perf_counter() - t0}
 
 
-def run_case_folder(path: str, index: int, engine: str = ENGINE) -> dict:
-    """Read and solve one case folder of a batch (the worker reads it from the path)."""
-    from optreserve.case.reader import load_case
-
-    t0 = time.perf_counter()
-    row = _attempt(lambda: load_case(path), engine)
-    return {"point": index, "case": Path(path).name, **row,
-            "solve_s": time.perf_counter() - t0}
-
-
 # ------------------------------------------------------------------ running many
 def run_sweep(case: Case, varies: list[Vary], workers: int | None = None,
               scheduler: str | None = None, progress: bool = False,
@@ -271,14 +261,11 @@ def case_folders(folder: Path) -> list[Path]:
 
 def run_batch(folder: Path, workers: int | None = None, scheduler: str | None = None,
               progress: bool = False, engine: str = ENGINE) -> pd.DataFrame:
-    """One row per case folder inside `folder`; each worker reads its case from the path."""
-    tasks = [(i, (str(p), engine)) for i, p in enumerate(case_folders(folder))]
-    return _table(_run(_batch_point, None, tasks, workers, scheduler, progress, "batch"),
-                  ["case"])
+    """One row per case folder inside `folder`; each worker reads its case from the path
+    (studies/batch.py also returns each case's result for its own folder)."""
+    from optreserve.studies.batch import run_cases
 
-
-def _batch_point(_shared, index: int, path: str, engine: str) -> dict:
-    return run_case_folder(path, index, engine)
+    return run_cases(folder, workers, scheduler, progress, engine)[0]
 
 
 def _run(fn, shared, tasks, workers, scheduler, progress, what) -> list[dict]:
@@ -317,7 +304,8 @@ def _run_dask(fn, shared, tasks, workers, scheduler, bar) -> list[dict]:
                 rows.append(f.result())
             except Exception as exc:  # the worker itself failed (killed, lost, ...)
                 i, args = futures[f]
-                where = {"case": Path(args[0]).name} if fn is _batch_point else dict(args[0])
+                where = ({"case": Path(args[0]).name} if isinstance(args[0], str)
+                         else dict(args[0]))
                 rows.append({"point": i, **where,
                              **_failed("error", f"{type(exc).__name__}: {exc}"),
                              "solve_s": None})
@@ -358,12 +346,15 @@ def _table(rows: list[dict], keys: list[str]) -> pd.DataFrame:
 
 # ------------------------------------------------------------------ writing
 def write_study(table: pd.DataFrame, out: Path, name: str, keys: list[str], meta: dict,
-                force: bool = False) -> list[str]:
+                force: bool = False, extra=None) -> list[str]:
     """Write NAME.csv (and NAME.parquet for large tables), a cost plot NAME.png when one or
-    two keys vary, and NAME.json (what was run, the counts, the caution); all at once."""
+    two keys vary, and NAME.json (what was run, the counts, the caution); all at once.
+    extra(tmp) -> names: further files or folders written into the same staging folder."""
     written = []
     with staged_output(Path(out), force) as tmp:
-        write_table(table, tmp / f"{name}.csv")
+        if extra is not None:
+            written += extra(tmp)
+        write_table(table, tmp / f"{name}.csv", exact=tuple(keys))  # swept values in full
         written.append(f"{name}.csv")
         if len(table) >= PARQUET_MIN_ROWS:
             table.to_parquet(tmp / f"{name}.parquet", index=False)
@@ -371,8 +362,8 @@ def write_study(table: pd.DataFrame, out: Path, name: str, keys: list[str], meta
         if plot_costs(table, keys, tmp / f"{name}.png", meta.get("case", "")):
             written.append(f"{name}.png")
         counts = table["status"].value_counts().to_dict()
-        doc = {**meta, "points": len(table), "status_counts": {k: int(v) for k, v in
-                                                               counts.items()},
+        doc = {**meta, "cases" if keys == ["case"] else "points": len(table),
+               "status_counts": {k: int(v) for k, v in counts.items()},
                "files": written + [f"{name}.json"], "caution": CAUTION}
         (tmp / f"{name}.json").write_text(json.dumps(doc, indent=2) + "\n")
         written.append(f"{name}.json")

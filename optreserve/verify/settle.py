@@ -12,11 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from optreserve.case.data import Case
-
-# Round-off below which a response that just covers the event still settles (the solver's
-# feasibility tolerance leaves headroom short by up to ~1e-7 MW of the droop's need).
-SATURATION_TOL = 1e-9
-SATURATION_ABS_MW = 1e-6
+from optreserve.verify.roundoff import covers  # the one place solver round-off is absorbed
 
 
 def settle_deviation(dP: float, gain, deadband_hz, headroom, damping_mw_per_hz: float) -> float:
@@ -46,7 +42,7 @@ def settle_deviation(dP: float, gain, deadband_hz, headroom, damping_mw_per_hz: 
     if k >= len(pts):
         slope = D  # beyond the last breakpoint only load self-regulation grows
         if slope <= 0:
-            if dP - vals[-1] <= SATURATION_TOL * max(1.0, dP) + SATURATION_ABS_MW:
+            if covers(vals[-1], dP):
                 return float(pts[-1])  # covered to within round-off: settles at saturation
             return float("inf")
         return float(pts[-1] + (dP - vals[-1]) / slope)
@@ -132,8 +128,7 @@ def settle_batch(dP, gain, deadband_hz, headroom, damping_mw_per_hz) -> np.ndarr
         return np.minimum(K * np.maximum(x[:, None] - d, 0.0), r).sum(axis=1) + D * x
 
     # a response that covers dP only to within round-off still settles (at full headroom)
-    no_point = (D <= 0) & (r.sum(axis=1) < dP - SATURATION_TOL * np.maximum(1.0, dP)
-                           - SATURATION_ABS_MW)
+    no_point = (D <= 0) & ~covers(r.sum(axis=1), dP)
     lo = np.zeros_like(dP)
     for _ in range(BISECTION_STEPS):
         mid = 0.5 * (lo + hi)
