@@ -96,15 +96,30 @@ def read_matpower(path: str | Path, *, defaults: ImportDefaults | None = None,
     with warnings.catch_warnings(), _quiet_pandapower():
         warnings.simplefilter("ignore")
         net = from_ppc(ppc, f_hz=50.0)
+    # from_ppc (pandapower 3.5) creates `impedance` branches in service whatever the file's
+    # status column says: set every branch's status from the file.
+    lk = net._from_ppc_lookups["branch"]
+    status = ppc["branch"][:, 10] > 0
+    for el in ("line", "trafo", "impedance"):
+        mine = (lk.element_type == el).to_numpy()
+        if mine.any():
+            net[el].loc[lk.element[mine].astype(np.int64).to_numpy(), "in_service"] = \
+                status[mine]
     # Bus index of the network = MATPOWER bus number (from_ppc indexes buses by BUS_I).
     bus_area = pd.Series([_label(a) for a in area_col], index=net.bus.index)
     names = _ppc_names(net, ppc)
     # MATPOWER's branch is a pi model: with trafo_model="pi" pandapower's DC branch data are
     # the file's own x times tap (with "t" a transformer's magnetising branch would shift its
     # series reactance slightly in the conversion).
-    return from_pandapower(net, name=Path(path).stem, bus_area=bus_area, defaults=defaults,
-                           drop_overloaded_limits=drop_overloaded_limits, trafo_model="pi",
-                           **names)
+    tables = from_pandapower(net, name=Path(path).stem, bus_area=bus_area, defaults=defaults,
+                             drop_overloaded_limits=drop_overloaded_limits, trafo_model="pi",
+                             **names)
+    pg = pd.Series(ppc["gen"][:, 1], index=[f"g{k + 1}" for k in range(len(ppc["gen"]))])
+    moved = tables.units.set_index("unit").output_mw - pg.reindex(tables.units.unit).to_numpy()
+    for unit, dp in moved[moved.abs() > 0.1].items():
+        tables.notes.append(f"unit {unit}: output {pg[unit] + dp:.3f} MW from the DC load flow "
+                            f"(slack), {pg[unit]:.3f} MW in the file")
+    return tables
 
 
 def read_pandapower_json(path: str | Path, *, defaults: ImportDefaults | None = None,
