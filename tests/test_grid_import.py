@@ -25,7 +25,7 @@ from optreserve.grid.matpower import parse_matpower
 
 pp = pytest.importorskip("pandapower")
 pn = pytest.importorskip("pandapower.networks")
-from pandapower.converter.matpower import to_mpc  # noqa: E402
+from pandapower.converter.matpower import to_mpc
 
 DATA = Path(__file__).parent / "data"
 
@@ -261,3 +261,29 @@ def test_matpower_format_errors_name_file_line_and_field(tmp_path):
     none.write_text("function mpc = none\nmpc.baseMVA = 100;\n")
     with pytest.raises(CaseError, match="has no mpc.bus"):
         parse_matpower(none)
+
+
+def test_consumers_and_negative_loads_keep_the_balance_and_the_flows():
+    """A generator with max_p_mw <= 0 drawing 20 MW becomes bus load, and a bus whose net
+    load is negative (a -30 MW load) gets a non-providing infeed unit; flows still equal
+    pandapower.rundcpp within 0.01 MW and the contract's rules hold (load_mw >= 0,
+    capacity_mw > 0)."""
+    net = pn.case9()
+    g = net.gen.index[0]
+    net.gen.loc[g, ["p_mw", "max_p_mw", "min_p_mw"]] = [-20.0, 0.0, -50.0]
+    free_bus = int(net.bus.index[~net.bus.index.isin(net.load.bus)
+                                 & ~net.bus.index.isin(net.gen.bus)
+                                 & ~net.bus.index.isin(net.ext_grid.bus)][0])
+    pp.create_load(net, free_bus, p_mw=-30.0)
+    t = from_pandapower(net, name="case9")
+    ref = _pp_flows(net)
+    np.testing.assert_allclose(t.links.set_index("link").flow_mw.reindex(ref.index),
+                               ref.to_numpy(), atol=0.01)
+    buses = t.buses.set_index("bus")
+    assert buses.load_mw[int(net.gen.bus[g])] == pytest.approx(20.0 + float(
+        net.load.p_mw[net.load.bus == net.gen.bus[g]].sum()))
+    infeed = t.units.set_index("unit").loc[f"netinfeed_{free_bus}"]
+    assert infeed.output_mw == pytest.approx(30.0) and infeed.provides == "false"
+    assert buses.load_mw[free_bus] == 0.0
+    assert t.buses.load_mw.min() >= 0 and t.units.capacity_mw.min() > 0
+    assert not (t.events.unit == f"netinfeed_{free_bus}").any()

@@ -90,7 +90,7 @@ def read_matpower(path: str | Path, *, defaults: ImportDefaults | None = None,
     """A MATPOWER version 2 `.m` file (parsed here, see matpower.py; converted by pandapower's
     from_ppc). Buses keep their MATPOWER numbers, areas come from the bus `area` column,
     links are named br<row> and units g<row> after their rows in the file."""
-    pp, from_ppc = _pandapower()
+    _, from_ppc = _pandapower()
     ppc = parse_matpower(path)
     area_col = ppc["bus"][:, 6].copy()
     with warnings.catch_warnings(), _quiet_pandapower():
@@ -114,6 +114,9 @@ def read_matpower(path: str | Path, *, defaults: ImportDefaults | None = None,
     tables = from_pandapower(net, name=Path(path).stem, bus_area=bus_area, defaults=defaults,
                              drop_overloaded_limits=drop_overloaded_limits, trafo_model="pi",
                              **names)
+    if (defaults or ImportDefaults()).nominal_frequency_hz is None:
+        tables.notes.append("nominal frequency 50 Hz assumed: MATPOWER files do not give it "
+                            "(ImportDefaults.nominal_frequency_hz)")
     pg = pd.Series(ppc["gen"][:, 1], index=[f"g{k + 1}" for k in range(len(ppc["gen"]))])
     moved = tables.units.set_index("unit").output_mw - pg.reindex(tables.units.unit).to_numpy()
     for unit, dp in moved[moved.abs() > 0.1].items():
@@ -129,7 +132,7 @@ def read_pandapower_json(path: str | Path, *, defaults: ImportDefaults | None = 
     pp, _ = _pandapower()
     try:
         net = pp.from_json(str(path))
-    except Exception as exc:  # pandapower raises many kinds on a bad file
+    except Exception as exc:  # noqa: BLE001 - pandapower raises many kinds on a bad file
         raise CaseError([Problem(Path(path).name, f"is not a pandapower network: {exc}")]) \
             from None
     return from_pandapower(net, name=Path(path).stem, defaults=defaults,
@@ -154,7 +157,7 @@ def from_pandapower(net, *, name: str = "imported", bus_area: pd.Series | None =
             warnings.simplefilter("ignore")
             # numba=False: a DC power flow gains nothing from it and pandapower would warn.
             pp.rundcpp(net, trafo_model=trafo_model, numba=False)
-    except Exception as exc:
+    except Exception as exc:  # noqa: BLE001 - any failure of the flow is the input's
         raise CaseError([Problem(src, f"pandapower's DC power flow failed: {exc}")]) from None
     from pandapower.pypower.idx_brch import BR_STATUS, BR_X, F_BUS, SHIFT, T_BUS, TAP
 
