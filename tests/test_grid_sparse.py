@@ -14,9 +14,9 @@ from optreserve.grid import Grid, GridError
 
 pp = pytest.importorskip("pandapower")
 pn = pytest.importorskip("pandapower.networks")
-from pandapower.pypower.idx_brch import BR_STATUS, BR_X, F_BUS, SHIFT, T_BUS, TAP  # noqa: E402
-from pandapower.pypower.idx_bus import BUS_TYPE, REF  # noqa: E402
-from pandapower.pypower.makePTDF import makePTDF  # noqa: E402
+from pandapower.pypower.idx_brch import BR_STATUS, BR_X, F_BUS, SHIFT, T_BUS, TAP
+from pandapower.pypower.idx_bus import BUS_TYPE, REF
+from pandapower.pypower.makePTDF import makePTDF
 
 
 def _solved(name: str):
@@ -202,3 +202,22 @@ def test_dc_flow_balance_rule():
     np.testing.assert_allclose(flows, [ab, ab - lb, ab - 300.0], atol=1e-9)
     with pytest.raises(GridError, match=r"mismatch -1\.000 MW is more than 0\.1 %"):
         g.dc_flow([0], [299.3], [0.0, 100.0, 200.3])
+
+
+def test_from_tables_equals_index_form():
+    """The table form (buses.csv / links.csv columns of the contract) builds the same grid:
+    checked on pandapower's case39 flows (pandapower.rundcpp, 0.01 MW)."""
+    import pandas as pd
+
+    net = _solved("case39")
+    g = _grid_of(net)
+    buses = pd.DataFrame({"bus": [f"N{k}" for k in range(g.n_buses)]})
+    links = pd.DataFrame({"link": [f"L{k}" for k in range(g.n_branches)],
+                          "from_bus": [f"N{k}" for k in g.from_idx],
+                          "to_bus": [f"N{k}" for k in g.to_idx],
+                          "reactance_pu": g.reactance_pu, "limit_mw": np.nan})
+    h = Grid.from_tables(buses, links, slack_bus="N5")
+    assert h.slack == 5 and not h.monitored.any()
+    np.testing.assert_allclose(h.flows(_injections(net)), _pp_branch_flows(net), atol=0.01)
+    with pytest.raises(GridError, match="bus id 'N1' is not unique"):
+        Grid.from_tables(pd.concat([buses, buses.iloc[[1]]]), links)

@@ -22,9 +22,10 @@ from __future__ import annotations
 from collections.abc import Sequence
 
 import numpy as np
+import pandas as pd
 import scipy.sparse as sp
-import scipy.sparse.csgraph as csgraph
 import scipy.sparse.linalg as spla
+from scipy.sparse import csgraph
 
 from ..errors import CaseError, Problem
 
@@ -198,32 +199,49 @@ class Grid:
     ) -> Grid:
         """Build from bus ids on the branches (as in links.csv) instead of bus indices;
         an unknown id is an input error naming the branch."""
-        bus_ids = list(bus_ids)
-        pos = {b: k for k, b in enumerate(bus_ids)}
-        if len(pos) != len(bus_ids):
-            raise GridError([Problem("buses.csv", "bus ids are not unique", None, "bus")])
-        fb, tb = list(from_bus), list(to_bus)
-        names = list(branch_ids) if branch_ids is not None else list(range(len(fb)))
+        index = pd.Index(list(bus_ids))
+        if not index.is_unique:
+            dup = index[index.duplicated()][0]
+            raise GridError([Problem("buses.csv", f"bus id {dup!r} is not unique", None, "bus")])
+        f = index.get_indexer(list(from_bus))
+        t = index.get_indexer(list(to_bus))
+        names = list(branch_ids) if branch_ids is not None else list(range(len(f)))
         problems = []
-        for col, ends in (("from_bus", fb), ("to_bus", tb)):
-            for k, b in enumerate(ends):
-                if b not in pos and len(problems) < 50:
-                    row = None if rows is None else int(rows[k])
-                    problems.append(Problem(file, f"branch {names[k]}: bus {b!r} is not in "
-                                            "buses.csv", row, col))
+        for col, ends, idx in (("from_bus", from_bus, f), ("to_bus", to_bus, t)):
+            ends = list(ends)
+            for k in np.flatnonzero(idx < 0)[:50]:
+                row = None if rows is None else int(rows[k])
+                problems.append(Problem(file, f"branch {names[k]}: bus {ends[k]!r} is not in "
+                                        "buses.csv", row, col))
         if problems:
-            raise GridError(problems)
-        if slack_bus is not None and slack_bus not in pos:
-            raise ValueError(f"slack bus {slack_bus!r} is not in the grid")
-        return cls(bus_ids, np.fromiter((pos[b] for b in fb), np.int64, len(fb)),
-                   np.fromiter((pos[b] for b in tb), np.int64, len(tb)), reactance_pu,
-                   limit_mw, slack=0 if slack_bus is None else pos[slack_bus],
-                   branch_ids=names, file=file, rows=rows)
+            raise GridError(problems[:50])
+        slack = 0
+        if slack_bus is not None:
+            if slack_bus not in index:
+                raise ValueError(f"slack bus {slack_bus!r} is not in the grid")
+            slack = int(index.get_loc(slack_bus))
+        return cls(list(index), f, t, reactance_pu, limit_mw, slack=slack, branch_ids=names,
+                   file=file, rows=rows)
+
+    @classmethod
+    def from_tables(cls, buses, links, *, rows: Sequence[int] | None = None,
+                    slack_bus=None, file: str = "links.csv") -> Grid:
+        """Build from the buses.csv and links.csv tables of a nodal case (pandas DataFrames
+        with bus; link, from_bus, to_bus, reactance_pu, optional limit_mw). rows: the
+        physical line of each link in its file, for error messages."""
+        limit = links["limit_mw"].to_numpy(float) if "limit_mw" in links else None
+        return cls.from_ids(buses["bus"], links["from_bus"], links["to_bus"],
+                            links["reactance_pu"].to_numpy(float), limit, slack_bus=slack_bus,
+                            branch_ids=links.get("link"),
+                            file=file, rows=rows)
 
     def bus_index(self, ids: Sequence) -> np.ndarray:
-        """Bus index of each id (KeyError naming the first unknown id)."""
-        pos = {b: k for k, b in enumerate(self.bus_ids)}
-        return np.fromiter((pos[b] for b in ids), np.int64)
+        """Bus index of each id (KeyError naming the unknown ids)."""
+        idx = pd.Index(list(self.bus_ids)).get_indexer(list(ids))
+        if (idx < 0).any():
+            missing = [b for b, i in zip(ids, idx) if i < 0][:ISLAND_LIST]
+            raise KeyError(f"buses not in the grid: {missing}")
+        return idx.astype(np.int64)
 
     # ------------------------------------------------------------------ solving
     def angles(self, injections_mw: np.ndarray) -> np.ndarray:
