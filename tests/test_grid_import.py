@@ -6,6 +6,7 @@ case-format contract (/work/shared/design/case-format.md, "Version 2 additions")
 
 from __future__ import annotations
 
+import tomllib
 import warnings
 from pathlib import Path
 
@@ -229,6 +230,8 @@ def test_write_case_folder_atomic_and_never_over_a_users_files(tmp_path):
     out = write_case_folder(t, tmp_path / "case")
     assert sorted(p.name for p in out.iterdir()) == sorted(
         ["case.toml", "buses.csv", "units.csv", "links.csv", "areas.csv", "events.csv"])
+    toml = tomllib.loads((out / "case.toml").read_text())
+    assert toml["limits"]["max_settled_deviation_hz"] == 0.2
     links = pd.read_csv(out / "links.csv", keep_default_na=False)
     assert links.limit_mw[2] == ""  # unmonitored: an empty cell (contract)
     np.testing.assert_allclose(links.flow_mw, t.links.flow_mw, atol=1e-6)

@@ -237,7 +237,8 @@ def from_pandapower(net, *, name: str = "imported", bus_area: pd.Series | None =
     areas["load_damping_pct_per_hz"] = d.load_damping_pct_per_hz
     events = _events(units, areas, d)
     f_hz = d.nominal_frequency_hz or float(net.f_hz)
-    toml = (f'name = "{name} (imported; check the defaults)"\n'
+    label = name.replace("\\", "\\\\").replace('"', '\\"')
+    toml = (f'name = "{label} (imported; check the defaults)"\n'
             f"nominal_frequency_hz = {f_hz:g}\n\n[limits]\n"
             f"max_settled_deviation_hz = {d.max_settled_deviation_hz:g}\n")
     return NodalTables(name, buses, units, links, areas, events, toml, overloads, notes, shift)
