@@ -2,8 +2,8 @@
 
 For each grid of pandapower.networks (case1354pegase, case2869pegase, case9241pegase), in a
 fresh process of its own so that the peak memory is that grid's:
-- import: optreserve.grid.importers.from_pandapower (pandapower's rundcpp included);
-- factorise: optreserve.grid.Grid from the links (incidence, island check, SuperLU of B_r);
+- import: optreserve.network.grid.importers.from_pandapower (pandapower's rundcpp included);
+- factorise: optreserve.network.grid.Grid from the links (incidence, island check, SuperLU of B_r);
 - flows x20: one batched solve of 20 balanced injection patterns (the pre-event injections
   plus 19 seeded random zero-sum patterns), checked against pandapower's DC flows;
 - PTDF x50: ptdf_rows of 50 seeded random branches, all bus columns, checked against the
@@ -47,8 +47,8 @@ def one(name: str, repeat: int) -> dict:
     import numpy as np
     import pandapower.networks as pn
 
-    from optreserve.grid import Grid
-    from optreserve.grid.importers import from_pandapower
+    from optreserve.network.grid import Grid
+    from optreserve.network.grid.importers import from_pandapower
 
     warnings.simplefilter("ignore")
     net = getattr(pn, name)()

@@ -1,4 +1,4 @@
-"""Importers of open case formats into nodal case tables (optreserve.grid.importers) against
+"""Importers of open case formats into nodal case tables (optreserve.network.grid.importers) against
 outside references: pandapower's DC power flow (pandapower.rundcpp res_line / res_trafo),
 MATPOWER's DC branch model (b = 1 / (x * tap), makeBdc in the MATPOWER manual) solved here
 with numpy, pandapower's own MATPOWER export (pandapower.converter.matpower.to_mpc), and the
@@ -15,14 +15,14 @@ import pandas as pd
 import pytest
 
 from optreserve.errors import CaseError
-from optreserve.grid.importers import (
+from optreserve.network.grid.importers import (
     ImportDefaults,
     from_pandapower,
     read_matpower,
     read_pandapower_json,
     write_case_folder,
 )
-from optreserve.grid.matpower import parse_matpower
+from optreserve.network.grid.matpower import parse_matpower
 
 pp = pytest.importorskip("pandapower")
 pn = pytest.importorskip("pandapower.networks")

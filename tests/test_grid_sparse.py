@@ -1,4 +1,4 @@
-"""The sparse nodal DC grid (optreserve.grid.sparse) against outside references:
+"""The sparse nodal DC grid (optreserve.network.grid.sparse) against outside references:
 pandapower's DC power flow (pandapower.rundcpp, res_line / res_trafo p_from_mw), pandapower's
 PTDF (pandapower.pypower.makePTDF, the PYPOWER/MATPOWER routine), a dense numpy solve written
 in the test, and hand calculations from the DC power-flow rules."""
@@ -10,7 +10,7 @@ import warnings
 import numpy as np
 import pytest
 
-from optreserve.grid import Grid, GridError
+from optreserve.network.grid import Grid, GridError
 
 try:  # pandapower is the outside reference of most tests here; the hand checks run without
     import pandapower as pp

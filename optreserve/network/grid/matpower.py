@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import CaseError, Problem
+from ...errors import CaseError, Problem
 
 # Standard MATPOWER widths (bus 13, gen 21, branch 13 columns); shorter rows of the optional
 # trailing columns are padded with MATPOWER's defaults.

@@ -27,7 +27,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from scipy.sparse import csgraph
 
-from ..errors import CaseError, Problem
+from ...errors import CaseError, Problem
 
 # Injections of a flow request must sum to zero per column, up to round-off of this size
 # relative to the largest injection (a mismatch would silently land at the slack bus).

@@ -29,7 +29,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..errors import CaseError, Problem
+from ...errors import CaseError, Problem
 from .matpower import parse_matpower
 from .sparse import Grid
 
