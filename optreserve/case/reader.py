@@ -23,6 +23,7 @@ import numpy as np
 import pandas as pd
 
 from optreserve.case.data import Case, DroopSettings, Limits, SolverSettings
+from optreserve.case.nodal import nodal_columns, read_nodal
 from optreserve.case.rules import fill_limits, rule_warnings
 from optreserve.errors import CaseError, Problem
 
@@ -439,6 +440,7 @@ def load_case(path: str | Path) -> Case:
                 "limits.rules")
 
     tables: dict[str, pd.DataFrame | None] = {}
+    nodal = (folder / "buses.csv").is_file()  # version 2 nodal case: case/nodal.py
     for name, cols, required in (
         ("units.csv", UNIT_COLS, True),
         ("areas.csv", AREA_COLS, True),
@@ -452,6 +454,7 @@ def load_case(path: str | Path) -> Case:
             tables[name] = None
             continue
         t = _read_csv(p, lab(name), col)
+        cols = nodal_columns(name, cols) if nodal else cols
         tables[name] = _typed_table(t, cols, col) if t is not None else None
 
     series_raw: dict[str, pd.DataFrame] = {}
@@ -472,6 +475,7 @@ def load_case(path: str | Path) -> Case:
             col.warn(lab(extra.name), "unknown time-series file ignored (expected units_, "
                      "areas_ or links_by_period.csv)")
 
+    net = read_nodal(folder, tables, col, bool(series_raw), settings) if nodal else None
     units, areas = tables["units.csv"], tables["areas.csv"]
     links, events = tables["links.csv"], tables["events.csv"]
 
@@ -493,13 +497,13 @@ def load_case(path: str | Path) -> Case:
         links = pd.DataFrame({c.name: pd.Series(dtype=float if c.kind == "float" else object)
                               for c in LINK_COLS})
         links["_line"] = pd.Series(dtype=int)
-    else:
+    elif not nodal:
         _check_links(links, lab("links.csv"), area_ids if areas is not None else None, col)
     if events is not None and units is not None and areas is not None:
         _check_events(events, lab("events.csv"), units, area_ids, col)
         if len(events) == 0:
             col.error(lab("events.csv"), "has no rows: at least one event is required", 1)
-    if areas is not None and len(areas) > 1 and not col.problems:
+    if areas is not None and len(areas) > 1 and not col.problems and not nodal:
         _check_connected(areas, links, lab("links.csv"), col)
 
     periods: tuple = ()
@@ -579,6 +583,7 @@ def load_case(path: str | Path) -> Case:
         series=series,
         hold_periods=settings.get("droop.hold_periods"),
         co_optimise=bool(settings.get("energy.co_optimise", False)),
+        nodal=net,
     )
     return case.replace(read_time_s=time.perf_counter() - t0)
 

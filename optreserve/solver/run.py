@@ -39,6 +39,10 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
       (studies such as retune proposals); the result's cost is always the headroom cost.
     hz: the stacked case (model.prepare), e.g. with extra event instances.
     Raises InfeasibleError (with a diagnosis) when no allocation meets the limits."""
+    if case.is_nodal:  # buses.csv: lazy sparse flow rows (solver/rowgen.py)
+        from optreserve.solver.rowgen import solve_nodal
+
+        return solve_nodal(case, engine, time_limit, mip_gap, relax, verbose, extend, hz)
     t_start = time.perf_counter()
     time_limit = time_limit if time_limit is not None else case.solver.time_limit_s
     mip_gap = mip_gap if mip_gap is not None else case.solver.mip_gap
