@@ -7,6 +7,7 @@ import json
 import sys
 
 from optreserve import __version__, progress
+from optreserve.cli.importing import add_import_parser
 from optreserve.cli.common import EXIT_INFEASIBLE, EXIT_INPUT, EXIT_OK, EXIT_OTHER
 from optreserve.cli.snapshot import _add_report_parser, cmd_check, cmd_generate, cmd_solve
 from optreserve.cli.studies import _add_retune_parser, _add_simulate_parser, _add_study_parsers
@@ -83,6 +84,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_retune_parser(sub)
     _add_simulate_parser(sub)
     _add_study_parsers(sub)
+    add_import_parser(sub)
     return p
 
 
