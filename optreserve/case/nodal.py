@@ -146,19 +146,16 @@ def read_nodal(folder: Path, tables: dict, col, has_series: bool, settings: dict
 
     # units: the bus places the unit, its area follows
     ub = bpos.get_indexer(list(units["bus"]))
-    ua = units["area"].to_numpy(object).copy()
-    for k in range(len(units)):
-        line = int(units["_line"].iat[k])
-        if ub[k] < 0:
-            col.error(lab("units.csv"), f"unknown bus '{units['bus'].iat[k]}' (not in "
-                      "buses.csv)", line, "bus")
-            continue
-        own = buses["area"].iat[ub[k]]
-        if ua[k] and ua[k] != own:
-            col.error(lab("units.csv"), f"area '{ua[k]}' differs from the area '{own}' of bus "
-                      f"'{units['bus'].iat[k]}'", line, "area")
-        ua[k] = own
-    units["area"] = ua
+    ua = units["area"].to_numpy(object)
+    uline = units["_line"].to_numpy(np.int64)
+    own = np.where(ub >= 0, buses["area"].to_numpy(object)[np.maximum(ub, 0)], "")
+    for k in np.flatnonzero(ub < 0):
+        col.error(lab("units.csv"), f"unknown bus '{units['bus'].iat[k]}' (not in "
+                  "buses.csv)", int(uline[k]), "bus")
+    for k in np.flatnonzero((ub >= 0) & (ua != "") & (ua != own)):
+        col.error(lab("units.csv"), f"area '{ua[k]}' differs from the area '{own[k]}' of bus "
+                  f"'{units['bus'].iat[k]}'", int(uline[k]), "area")
+    units["area"] = np.where(ub >= 0, own, ua)
 
     # areas: load is the sum of the buses' load
     bus_load = buses["load_mw"].to_numpy(float)

@@ -62,13 +62,15 @@ class NodalFlowRows:
         Fw = self.grid.flows(np.c_[W - e_slack, V]) if M else np.zeros((len(net.from_bus), 0))
         self.Pw = np.asarray((self.S @ Fw[:, :M]).T)  # (M, K)
         self.Pv = np.asarray((self.S @ Fw[:, M:]).T)  # (M, K)
-        self._ptdf = np.full((self.n_mon, self.n_p), np.nan)
-        self._have = np.zeros(self.n_mon, dtype=bool)
+        # PTDF rows computed so far (only for elements that got a row): row of each element
+        # in self._rows, -1 when not computed yet
+        self._row_of = np.full(self.n_mon, -1, dtype=np.int64)
+        self._rows = np.zeros((0, self.n_p))
 
     def ptdf(self, k: np.ndarray) -> np.ndarray:
         """(len(k), provider buses) PTDF rows of monitored elements k (slack column 0)."""
         k = np.asarray(k, dtype=np.int64)
-        need = np.unique(k[~self._have[k]])
+        need = np.unique(k[self._row_of[k] < 0])
         if len(need):
             sub = self.S[need]  # (n, L): the branches these elements weigh
             br = np.unique(sub.indices)
@@ -77,9 +79,9 @@ class NodalFlowRows:
             pos[br] = np.arange(len(br))
             sub = sp.csr_matrix((sub.data, pos[sub.indices], sub.indptr),
                                 shape=(len(need), len(br)))
-            self._ptdf[need] = sub @ rows
-            self._have[need] = True
-        return self._ptdf[k]
+            self._row_of[need] = len(self._rows) + np.arange(len(need))
+            self._rows = np.concatenate([self._rows, sub @ rows])
+        return self._rows[self._row_of[k]]
 
     def weights(self, m, k, sense):
         """Row weights W (rows, P) and constants (rows,) of rows (m, k, sense = +1 upper,
