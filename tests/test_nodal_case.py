@@ -213,17 +213,19 @@ def dense_reference(case):
     return res.fun
 
 
-@pytest.mark.parametrize("tight", [False, True])
-def test_optimum_equals_independent_dense_milp(tmp_path, tight):
+@pytest.mark.parametrize("tight, engine", [(False, "highspy"), (True, "highspy"),
+                                           (True, "pyomo")])
+def test_optimum_equals_independent_dense_milp(tmp_path, tight, engine):
     """optreserve's optimum on the small meshed nodal case equals the dense MILP written
-    above (scipy.optimize.milp), with loose and with binding tie limits."""
+    above (scipy.optimize.milp), with loose and with binding tie limits, through both
+    emitters (HiGHS bulk load and Pyomo)."""
     over = {}
     if tight:
         lk = pd.read_csv(small_case(tmp_path / "ref") / "links.csv", keep_default_na=False)
         lk.loc[lk.link == "t1", "limit_mw"] = 45
         over["links"] = lk.to_dict("records")
     case = load_case(small_case(tmp_path / "c", **over))
-    res = solve(case, engine="highspy")
+    res = solve(case, engine=engine)
     ref = dense_reference(case)
     assert res.objective_per_h == pytest.approx(ref, rel=1e-5, abs=1e-4)
     lk = res.links
@@ -425,3 +427,20 @@ def test_import_cli_writes_a_solvable_case(tmp_path, capsys):
     assert case.is_nodal and len(case.nodal.buses) == 6
     assert main(["import", str(src), "--out", str(out), "--quiet"]) == 2
     assert json.loads(json.dumps(list(case.links.columns)))  # columns plain strings
+
+
+def test_simulate_and_nadir_on_a_nodal_case(tmp_path):
+    """simulate aggregates per area (case.nodal.area_equivalent): inertia is needed per area,
+    not per bus; its settled frequency equals the static settled point (the swing equation
+    at rest is the power balance, common practice)."""
+    folder = small_case(tmp_path / "c")
+    u = pd.read_csv(folder / "units.csv")
+    u.loc[u.unit.isin(["Wa", "Oa"]), "inertia_s"] = 5.0  # one machine with inertia per area
+    u.to_csv(folder / "units.csv", index=False)
+    assert main(["solve", str(folder), "--out", str(tmp_path / "o"), "--quiet"]) == 0
+    assert main(["simulate", str(folder), "--allocation", str(tmp_path / "o"), "--all",
+                 "--out", str(tmp_path / "s"), "--quiet"]) == 0
+    sim = pd.read_csv(tmp_path / "s" / "simulation_summary.csv", comment="#").set_index("event")
+    ev = pd.read_csv(tmp_path / "o" / "events.csv").set_index("event")
+    assert np.allclose(sim.loc[ev.index, "steady_state_frequency_hz"],
+                       ev["settled_frequency_hz"], atol=2e-3)

@@ -324,3 +324,33 @@ def _monitor(folder: Path, links, lim, col, lab):
     is_link = np.zeros(n_m, dtype=bool)
     is_link[:len(mon_links)] = True
     return S, np.asarray(limits, float), np.asarray(ids, dtype=object), is_link
+
+
+def area_equivalent(case):
+    """The case at area level, for the time-domain simulation (which models one frequency
+    per area): one node per area, and per area pair with ties one link whose susceptance is
+    the sum of its ties' (parallel branches), whose limit is the sum of the ties' limits
+    (an unmonitored tie counts as 1e6 MW) and whose pre-event flow is the net interchange.
+    Inertia and droop stay with the units, so they add up per area; buses.csv is dropped.
+    The internal impedances of the areas are not in this view: it is for frequency, not
+    for branch flows (those come from the nodal solve)."""
+    net = case.nodal
+    lk = case.links
+    a_f, a_t = net.bus_area[net.from_bus], net.bus_area[net.to_bus]
+    tie = a_f != a_t
+    lo, hi = np.minimum(a_f, a_t)[tie], np.maximum(a_f, a_t)[tie]
+    sign = np.where(a_f[tie] == lo, 1.0, -1.0)
+    n_a = len(case.areas)
+    key, pair = np.unique(lo * n_a + hi, return_inverse=True)
+    b = np.bincount(pair, weights=1.0 / lk["reactance_pu"].to_numpy(float)[tie],
+                    minlength=len(key))
+    lim = np.nan_to_num(lk["limit_mw"].to_numpy(float)[tie], nan=1e6)
+    flow = np.bincount(pair, weights=sign * lk["flow_mw"].to_numpy(float)[tie],
+                       minlength=len(key))
+    ids = case.areas["area"].to_numpy(object)
+    fa, ta = ids[key // n_a], ids[key % n_a]
+    links = pd.DataFrame({
+        "link": [f"{f}-{t}" for f, t in zip(fa, ta)], "from_area": fa, "to_area": ta,
+        "reactance_pu": 1.0 / np.abs(b),  # series compensation cannot make a pair capacitive
+        "limit_mw": np.bincount(pair, weights=lim, minlength=len(key)), "flow_mw": flow})
+    return case.replace(links=links, nodal=None)

@@ -24,6 +24,7 @@ import pandas as pd
 
 from optreserve import progress
 from optreserve.case.data import Case
+from optreserve.case.nodal import area_equivalent
 from optreserve.errors import InfeasibleError, SolverError, VerificationError
 from optreserve.model.build import build_model
 from optreserve.model.horizon import prepare
@@ -31,6 +32,7 @@ from optreserve.model.nodal_flows import NodalFlowRows
 from optreserve.solver.backends import solve_program
 from optreserve.solver.prices import _attach_prices
 from optreserve.solver.readback import AGREE_MW, _make_result, exact_points
+from optreserve.solver.run import _nadir_round
 from optreserve.verify.nodal import interchange, monitored, nodal_flows_after
 
 # Rows are added for flows above (1 - ROWGEN_MARGIN) of their limit: the nearly binding
@@ -72,13 +74,15 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
     live = hz.dP > 0
     x_hat = None
     prev = None
+    nadir = {"scale": None, "rounds": 0, "checked": False, "worst_hz": None}
     passes = 0
     added = []
     while True:
         passes += 1
         t0 = time.perf_counter()
         progress.step(f"building the model (flow-row pass {passes})")
-        lp, info = build_model(area_case, x_hat=x_hat, relax=relax, hz=hz)
+        lp, info = build_model(area_case, x_hat=x_hat, relax=relax, hz=hz,
+                               nadir_scale=nadir["scale"])
         m, k, d = np.nonzero(active)
         rows.add(lp, info, lp.var_blocks["K"], (m, k, np.where(d == 0, 1.0, -1.0)))
         if extend is not None:
@@ -118,7 +122,11 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
         prev = (lp, info, out, K_now)
         added.append(int(new.sum()))
         if not over.any() and (not dead_bands or not moved or active.sum() == 0):
-            break
+            # the simulated nadir check of solve(), on the area-level view (one frequency
+            # per area, inertia summed per area); a tightened nadir row means another pass
+            if not _nadir_round(area_equivalent(case), info, lp, out, nadir):
+                break
+            continue
         if passes >= ROWGEN_MAX_PASSES:
             if over.any():
                 raise VerificationError(
@@ -151,6 +159,7 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
         case, hz, flows, result.events["event"].to_numpy(object))
     result.solver_warnings = [w for w in out.warnings if "small costs" not in w]
     result.iterations = passes
+    result.nadir_check = {k: nadir[k] for k in ("checked", "rounds", "worst_hz")}
     result.verification["flow_row_passes"] = passes
     result.verification["flow_rows"] = int(active.sum())
     t_price = _attach_prices(result, lp, info, out)
