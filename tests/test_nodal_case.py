@@ -444,3 +444,21 @@ def test_simulate_and_nadir_on_a_nodal_case(tmp_path):
     ev = pd.read_csv(tmp_path / "o" / "events.csv").set_index("event")
     assert np.allclose(sim.loc[ev.index, "steady_state_frequency_hz"],
                        ev["settled_frequency_hz"], atol=2e-3)
+
+
+def test_event_price_equals_finite_difference_with_binding_flow_rows(tmp_path):
+    """The event price (envelope theorem over the settled and the nodal flow rows) equals
+    the change of the optimum cost when the load step grows by 0.01 MW (a finite
+    difference of two independent solves, integer choices unchanged), with tie t1 binding."""
+    lk = pd.read_csv(small_case(tmp_path / "ref") / "links.csv", keep_default_na=False)
+    lk.loc[lk.link == "t1", "limit_mw"] = 45
+    ev = pd.read_csv(tmp_path / "ref" / "events.csv", keep_default_na=False).to_dict("records")
+    costs, prices = [], []
+    for k, size in enumerate((120.0, 120.01)):
+        ev[1]["size_mw"] = size
+        res = solve(load_case(small_case(tmp_path / f"c{k}", links=lk.to_dict("records"),
+                                         events=ev)), engine="highspy")
+        assert res.verification["flow_rows"] > 0
+        costs.append(res.objective_per_h)
+        prices.append(res.events.set_index("event").loc["step_o2", "marginal_cost_per_mw_h"])
+    assert prices[0] == pytest.approx((costs[1] - costs[0]) / 0.01, rel=1e-4)

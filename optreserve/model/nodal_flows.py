@@ -111,6 +111,7 @@ class NodalFlowRows:
                     np.r_[Gp.idx(), K_block.idx(b * N + ii)],
                     np.r_[np.ones(n_rows), -np.ones(len(ii))], lo=0.0, hi=0.0)
         m, k, sense = active
+        self.active = (m, k, sense)
         R = len(m)
         if R == 0:
             return
@@ -122,20 +123,14 @@ class NodalFlowRows:
                        + np.arange(n_k)[None, None, :]).reshape(-1))
         rows = np.repeat(np.arange(R), self.n_p * n_k)
         vals = coef.reshape(-1)
-        # providers that respond in the period but not in the instance (the tripped unit)
-        te, j = _removed(hz, np.unique(m))
-        if len(te):
-            # every active row of instance te gets -c_j K_j W[row, slot_j]
-            order = np.argsort(m, kind="stable")
-            lo_i = np.searchsorted(m[order], te, side="left")
-            hi_i = np.searchsorted(m[order], te, side="right")
-            cnt = hi_i - lo_i
-            r = order[np.concatenate([np.arange(a, z) for a, z in zip(lo_i, hi_i)])
-                      ] if cnt.sum() else np.zeros(0, np.int64)
-            jj = np.repeat(j, cnt)
-            tt = np.repeat(te, cnt)
-            keep = self.slot_of_unit[jj] >= 0
-            r, jj, tt = r[keep], jj[keep], tt[keep]
+        # providers that respond in the period but not in the instance (the tripped unit,
+        # an absent provider): -c_j K_j W[row, bus of j] in every active row of the instance
+        for arr in (hz.trip, hz.absent):
+            jj = arr[m]
+            ok = jj >= 0
+            ok[ok] = hz.avail[hz.inst_t[m[ok]], jj[ok]] & (self.slot_of_unit[jj[ok]] >= 0)
+            r, jj = np.flatnonzero(ok), jj[ok]
+            tt = m[r]
             with np.errstate(divide="ignore", invalid="ignore"):
                 cj = np.clip(1.0 - hz.d_hz[jj] / np.where(info.x_hat[tt] > 0, info.x_hat[tt],
                                                            np.inf), 0.0, 1.0)
@@ -147,9 +142,8 @@ class NodalFlowRows:
         hi = np.where(sense > 0, -const, np.inf)
         lp.add_rows("nodal_flow", R, rows[nz], cols[nz], vals[nz], lo=lo, hi=hi)
 
-    def predicted(self, lp: LinearProgram, info, x, m, k) -> np.ndarray:
-        """The model's own flows of elements k after instances m (pairs) at its solution:
-        F0 + s dP (sum_p (Phi_kp - Phi_k.w_m) beta_p + Phi_k.v_m) / beta."""
+    def _beta_p(self, lp: LinearProgram, info, x) -> np.ndarray:
+        """(M, P) the model's beta_p per instance and provider bus at solution x."""
         hz = self.hz
         n_k = len(info.classes)
         G = lp.value(x, "G_bus").reshape(-1, self.n_p, n_k)
@@ -165,12 +159,31 @@ class NodalFlowRows:
                                                       np.inf), 0.0, 1.0)
         np.subtract.at(beta_p, (te, self.slot_of_unit[j]),
                        cj * K[hz.block[hz.inst_t[te]] * hz.N + j])
+        return beta_p
+
+    def predicted(self, lp: LinearProgram, info, x, m, k) -> np.ndarray:
+        """The model's own flows of elements k after instances m (pairs) at its solution:
+        F0 + s dP (sum_p (Phi_kp - Phi_k.w_m) beta_p + Phi_k.v_m) / beta."""
+        hz = self.hz
+        beta_p = self._beta_p(lp, info, x)
         beta = beta_p.sum(axis=1) + self.D_tot
         bp = beta_p[m]
         num = ((self.ptdf(k) - self.Pw[m, k][:, None]) * bp).sum(axis=1) + self.Pv[m, k]
         with np.errstate(divide="ignore", invalid="ignore"):
             dF = np.where(beta[m] > 0, hz.sigma[m] * hz.dP[m] * num / beta[m], 0.0)
         return self.F0[k] + dF
+
+
+    def price_terms(self, lp: LinearProgram, info, x):
+        """For the event prices (envelope theorem, solver/prices.py): per active row its
+        instance m and d(row - bound)/d dP = s (sum_p (Phi_kp - Phi_k.w_m) beta_p
+        + Phi_k.v_m) / Fmax_k at solution x."""
+        m, k, _ = getattr(self, "active", (np.zeros(0, np.int64),) * 3)
+        if len(m) == 0:
+            return m, np.zeros(0)
+        bp = self._beta_p(lp, info, x)[m]
+        num = ((self.ptdf(k) - self.Pw[m, k][:, None]) * bp).sum(axis=1) + self.Pv[m, k]
+        return m, self.hz.sigma[m] * num / self.Fmax[k]
 
 
 def bus_damping(case, D_area: np.ndarray) -> np.ndarray:

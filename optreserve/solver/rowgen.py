@@ -85,6 +85,7 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
                                nadir_scale=nadir["scale"])
         m, k, d = np.nonzero(active)
         rows.add(lp, info, lp.var_blocks["K"], (m, k, np.where(d == 0, 1.0, -1.0)))
+        info.nodal_rows = rows  # for the event prices (solver/prices.py)
         if extend is not None:
             extend(lp, info)
         t_build += time.perf_counter() - t0
