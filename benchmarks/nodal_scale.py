@@ -8,7 +8,8 @@ steps of 300 MW at the 10 buses of largest load; branches loaded above 60 % of t
 before the events get a limit of 1/0.6 of their flow (else some events overload them with
 any allocation: an infeasible case). Then, each in a fresh process of its own
 (peak memory = that run's), best of --repeat:
-- optreserve: load_case + solve (highspy) + Result.write;
+- optreserve: load_case + solve (highspy) + Result.write;  the modules both sides need are
+  imported before the clock starts (the reference imports scipy and highspy at its top);
 - reference: benchmarks/nodal_reference.py on the same folder, writing the same tables.
 Both objectives are printed; they must agree (relative 1e-5).
 
@@ -75,6 +76,7 @@ def make_case(name: str, folder: Path) -> Path:
 def run_ours(folder: str, out: str) -> dict:
     import highspy  # noqa: F401  (imported before the clock starts, as in the reference)
 
+    import optreserve.network.grid  # noqa: F401  (scipy.sparse.linalg: the reader's grid)
     import optreserve.solver.rowgen  # noqa: F401  (solve() imports it on first use)
     from optreserve.case.reader import load_case
     from optreserve.solver.run import solve
