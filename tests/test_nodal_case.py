@@ -462,3 +462,37 @@ def test_event_price_equals_finite_difference_with_binding_flow_rows(tmp_path):
         costs.append(res.objective_per_h)
         prices.append(res.events.set_index("event").loc["step_o2", "marginal_cost_per_mw_h"])
     assert prices[0] == pytest.approx((costs[1] - costs[0]) / 0.01, rel=1e-4)
+
+
+def test_own_area_reserve_and_area_prices_on_a_nodal_case(tmp_path):
+    """Own-area reserve stays a per-area rule on nodal cases (contract: areas.csv
+    min_own_reserve_mw): the units at the buses of area O hold at least 90 MW of up
+    headroom, and prices.csv has one row per area."""
+    areas = [{"area": "W", "load_damping_pct_per_hz": 1.0, "min_own_reserve_mw": 0},
+             {"area": "O", "load_damping_pct_per_hz": 1.0, "min_own_reserve_mw": 90}]
+    case = load_case(small_case(tmp_path / "c", areas=areas))
+    res = solve(case, engine="highspy")
+    a = res.allocation.set_index("unit")
+    assert a.loc[["Oa", "Ob"], "headroom_up_mw"].sum() >= 90 - 1e-6
+    free = solve(load_case(small_case(tmp_path / "f")), engine="highspy")
+    assert free.allocation.set_index("unit").loc[["Oa", "Ob"], "headroom_up_mw"].sum() < 90
+    assert sorted(res.prices["area"]) == ["O", "W"]
+
+
+def test_interfaces_file_errors_and_pickle(tmp_path):
+    """interfaces.csv errors name file, row and column; a nodal case survives pickling (the
+    studies send cases to worker processes) and rebuilds its grid."""
+    import pickle
+
+    bad = [{"interface": "WO", "link": "t1", "weight": 1.0, "limit_mw": 100},
+           {"interface": "WO", "link": "t9", "weight": 1.0, "limit_mw": 100},
+           {"interface": "WO", "link": "t2", "weight": 1.0, "limit_mw": 90}]
+    with pytest.raises(CaseError) as exc:
+        load_case(small_case(tmp_path / "b", interfaces=bad))
+    got = {(p.row, p.column) for p in exc.value.problems if p.file.endswith("interfaces.csv")}
+    assert got == {(3, "link"), (4, "limit_mw")}
+    case = load_case(small_case(tmp_path / "c"))
+    again = pickle.loads(pickle.dumps(case))
+    P = np.zeros(6)
+    P[0], P[5] = 10.0, -10.0
+    assert np.allclose(again.nodal.grid().flows(P), case.nodal.grid().flows(P))
