@@ -61,7 +61,8 @@ def small_case(folder: Path, **over):
                "size_mw": ""},
               {"event": "step_o2", "kind": "load_step", "unit": "", "bus": "o2", "area": "",
                "size_mw": 120}]
-    parts = dict(buses=buses, units=units, links=links, areas=areas, events=events)
+    parts = {"buses": buses, "units": units, "links": links, "areas": areas,
+             "events": events}
     parts.update(over)
     return write_case(folder, **parts)
 
@@ -329,8 +330,7 @@ def test_post_event_flows_equal_pandapower_rundcpp(tmp_path, name):
     pp = pytest.importorskip("pandapower")
     import pandapower.networks as pn
 
-    from optreserve.network.grid.importers import (ImportDefaults, from_pandapower,
-                                                   write_case_folder)
+    from optreserve.network.grid.importers import ImportDefaults, from_pandapower, write_case_folder
 
     net = getattr(pn, name)()
     tables = from_pandapower(net, name=name, drop_overloaded_limits=True,

@@ -117,7 +117,7 @@ def read_nodal(folder: Path, tables: dict, col, has_series: bool, settings: dict
     their _line column). Problems go to the reader's collector; returns None when any."""
     from optreserve.case.reader import _read_csv, _typed_table
 
-    lab = lambda n: str(folder / n)  # noqa: E731
+    lab = lambda n: str(folder / n)
     t = _read_csv(folder / "buses.csv", lab("buses.csv"), col)
     buses = _typed_table(t, _cols(BUS_COLS_SPEC), col) if t is not None else None
     units, areas = tables["units.csv"], tables["areas.csv"]

@@ -7,8 +7,8 @@ import json
 import sys
 
 from optreserve import __version__, progress
-from optreserve.cli.importing import add_import_parser
 from optreserve.cli.common import EXIT_INFEASIBLE, EXIT_INPUT, EXIT_OK, EXIT_OTHER
+from optreserve.cli.importing import add_import_parser
 from optreserve.cli.snapshot import _add_report_parser, cmd_check, cmd_generate, cmd_solve
 from optreserve.cli.studies import _add_retune_parser, _add_simulate_parser, _add_study_parsers
 from optreserve.errors import CaseError, InfeasibleError, OptreserveError

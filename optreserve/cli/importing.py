@@ -32,8 +32,11 @@ def add_import_parser(sub) -> None:
 
 
 def cmd_import(args) -> int:
-    from optreserve.network.grid.importers import (read_matpower, read_pandapower_json,
-                                                   write_case_folder)
+    from optreserve.network.grid.importers import (
+        read_matpower,
+        read_pandapower_json,
+        write_case_folder,
+    )
 
     src = Path(args.file)
     if not src.is_file():

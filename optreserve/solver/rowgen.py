@@ -62,7 +62,7 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
     t_start = time.perf_counter()
     time_limit = time_limit if time_limit is not None else case.solver.time_limit_s
     mip_gap = mip_gap if mip_gap is not None else case.solver.mip_gap
-    opts = dict(time_limit=time_limit, mip_gap=mip_gap, verbose=verbose)
+    opts = {"time_limit": time_limit, "mip_gap": mip_gap, "verbose": verbose}
     area_case = lumped_view(case)
     t0 = time.perf_counter()
     hz = prepare(area_case) if hz is None else hz
@@ -76,7 +76,6 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
     prev = None
     nadir = {"scale": None, "rounds": 0, "checked": False, "worst_hz": None}
     passes = 0
-    added = []
     while True:
         passes += 1
         t0 = time.perf_counter()
@@ -121,7 +120,6 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
         moved = prev is None or np.abs(K_now - prev[3]).max(initial=0) > SAME_GAIN_MW_PER_HZ
         dead_bands = bool((hz.d_hz[hz.capable_b.any(axis=0)] > 0).any())
         prev = (lp, info, out, K_now)
-        added.append(int(new.sum()))
         if not over.any() and (not dead_bands or not moved or active.sum() == 0):
             # the simulated nadir check of solve(), on the area-level view (one frequency
             # per area, inertia summed per area); a tightened nadir row means another pass
@@ -134,9 +132,8 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
                     f"flow rows did not converge in {ROWGEN_MAX_PASSES} passes: worst excess "
                     f"{(np.abs(mon) - lim).max():.4f} MW")
             break
-        if over.any() and not new.any():
-            # a violated row exists already: only a dead-band guess can be off; move it
-            pass
+        # a flow over its limit whose row exists already can only come from the dead-band
+        # factors of the guess: the new guess below moves them
         active |= new
         if dead_bands:
             x_hat = np.where(live & np.isfinite(exact), exact, info.x_hat)
