@@ -326,6 +326,12 @@ def _monitor(folder: Path, links, lim, col, lab):
     return S, np.asarray(limits, float), np.asarray(ids, dtype=object), is_link
 
 
+def area_level(case):
+    """The case for the area-level rows and checks (units, areas, events; no link rows): a
+    nodal case's flows are rows of their own (model/nodal_flows.py, verify/nodal.py)."""
+    return case.replace(links=case.links.iloc[0:0]) if case.is_nodal else case
+
+
 def area_equivalent(case):
     """The case at area level, for the time-domain simulation (which models one frequency
     per area): one node per area, and per area pair with ties one link whose susceptance is

@@ -24,7 +24,7 @@ import pandas as pd
 
 from optreserve import progress
 from optreserve.case.data import Case
-from optreserve.case.nodal import area_equivalent
+from optreserve.case.nodal import area_equivalent, area_level
 from optreserve.errors import InfeasibleError, SolverError, VerificationError
 from optreserve.model.build import build_model
 from optreserve.model.horizon import prepare
@@ -49,11 +49,6 @@ ROWGEN_MAX_PASSES = 60
 SAME_GAIN_MW_PER_HZ = 1e-6
 
 
-def lumped_view(case: Case) -> Case:
-    """The case at area level for the area-level rows (units, areas, events; no link rows)."""
-    return case.replace(links=case.links.iloc[0:0])
-
-
 def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = None,
                 mip_gap: float | None = None, relax: bool = False, verbose: bool = False,
                 extend=None, hz=None):
@@ -63,7 +58,7 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
     time_limit = time_limit if time_limit is not None else case.solver.time_limit_s
     mip_gap = mip_gap if mip_gap is not None else case.solver.mip_gap
     opts = {"time_limit": time_limit, "mip_gap": mip_gap, "verbose": verbose}
-    area_case = lumped_view(case)
+    area_case = area_level(case)
     t0 = time.perf_counter()
     hz = prepare(area_case) if hz is None else hz
     rows = NodalFlowRows(case, hz)
