@@ -505,8 +505,7 @@ def test_case300_with_series_compensation_solves_to_the_dense_optimum(tmp_path):
     pytest.importorskip("pandapower")
     import pandapower.networks as pn
 
-    from optreserve.network.grid.importers import (ImportDefaults, from_pandapower,
-                                                   write_case_folder)
+    from optreserve.network.grid.importers import ImportDefaults, from_pandapower, write_case_folder
 
     tables = from_pandapower(pn.case300(), name="case300", drop_overloaded_limits=True,
                              defaults=ImportDefaults(load_step_mw=500.0))
