@@ -594,3 +594,15 @@ def test_over_frequency_and_area_steps_with_dead_bands_match_a_dense_dc_flow(tmp
         ref = pd.Series(flow, index=case.links.link)[mine.index]
         assert np.allclose(mine, ref, atol=1e-4), (r["event"], (mine - ref).abs().max())
         assert (mine.abs() <= case.links.set_index("link").limit_mw[mine.index] + 1e-3).all()
+
+
+def test_nodal_time_series_refused(tmp_path):
+    """Nodal cases are snapshots for now (docs/case-format.md): a *_by_period.csv is an
+    input error naming buses.csv."""
+    folder = small_case(tmp_path / "c")
+    pd.DataFrame({"period": ["p1"], "unit": ["Wa"], "output_mw": [240]}).to_csv(
+        folder / "units_by_period.csv", index=False)
+    with pytest.raises(CaseError) as exc:
+        load_case(folder)
+    assert any(p.file.endswith("buses.csv") and "time series" in p.message
+               for p in exc.value.problems)

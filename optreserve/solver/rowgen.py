@@ -97,7 +97,9 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
             raise InfeasibleError(
                 f"no allocation keeps every monitored flow within its limit ({int(active.sum())}"
                 " flow rows active): the network limits cannot be met with the units' "
-                "headroom and droop bands")
+                "headroom and droop bands", [f"{rows.net.monitor_ids[k]} after event "
+                                            f"{hz.inst_name[m]}: flow rows added last"
+                                            for m, k in last_new[:10]])
         if out.x is None:
             raise SolverError(f"HiGHS stopped without a usable allocation ({out.status}: "
                               f"{out.message})")
@@ -129,6 +131,7 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
             break
         # a flow over its limit whose row exists already can only come from the dead-band
         # factors of the guess: the new guess below moves them
+        last_new = sorted({(int(a), int(b)) for a, b, _ in zip(*np.nonzero(new))})
         active |= new
         if dead_bands:
             x_hat = np.where(live & np.isfinite(exact), exact, info.x_hat)
