@@ -68,6 +68,11 @@ class Case:
     series: dict = field(default_factory=dict)
     hold_periods: int | None = None  # droop fixed per block of N periods; None = whole horizon
     co_optimise: bool = False  # [energy] co_optimise: outputs become decisions (energy price)
+    nodal: object | None = None  # case.nodal.NodalNetwork of a buses.csv case, else None
+
+    @property
+    def is_nodal(self) -> bool:
+        return self.nodal is not None
 
     # --- horizon ---
     @property

@@ -50,6 +50,7 @@ from optreserve.case.csvio import FALSE_WORDS, TRUE_WORDS, _read_csv, _Table, _t
 from optreserve.case.data import Case, DroopSettings, Limits, SolverSettings
 from optreserve.case.products import check_products
 from optreserve.case.problems import MAX_PROBLEMS, _Collector
+from optreserve.case.nodal import nodal_columns, read_nodal
 from optreserve.case.rules import fill_limits, rule_warnings
 from optreserve.case.series import SERIES, _check_series, _period_key
 from optreserve.case.toml_settings import (
@@ -109,6 +110,7 @@ def load_case(path: str | Path) -> Case:
                 "limits.rules")
 
     tables: dict[str, pd.DataFrame | None] = {}
+    nodal = (folder / "buses.csv").is_file()  # version 2 nodal case: case/nodal.py
     for name, cols, required in (
         ("units.csv", UNIT_COLS, True),
         ("areas.csv", AREA_COLS, True),
@@ -122,6 +124,7 @@ def load_case(path: str | Path) -> Case:
             tables[name] = None
             continue
         t = _read_csv(p, lab(name), col)
+        cols = nodal_columns(name, cols) if nodal else cols
         tables[name] = _typed_table(t, cols, col) if t is not None else None
 
     series_raw: dict[str, pd.DataFrame] = {}
@@ -143,6 +146,7 @@ def load_case(path: str | Path) -> Case:
             col.warn(lab(extra.name), "unknown time-series file ignored (expected units_, "
                      "areas_ or links_by_period.csv)")
 
+    net = read_nodal(folder, tables, col, bool(series_raw), settings) if nodal else None
     units, areas = tables["units.csv"], tables["areas.csv"]
     links, events = tables["links.csv"], tables["events.csv"]
     check_products(folder, units, events, series_raw, settings, col)  # case/products.py
@@ -166,7 +170,7 @@ def load_case(path: str | Path) -> Case:
         links = pd.DataFrame({c.name: pd.Series(dtype=float if c.kind == "float" else object)
                               for c in LINK_COLS})
         links["_line"] = pd.Series(dtype=int)
-    else:
+    elif not nodal:
         _check_links(links, lab("links.csv"), area_ids if areas is not None else None, col)
         check_reactance_spread(links["reactance_pu"].to_numpy(float), links["_line"].to_numpy(),
                                lab("links.csv"), col)
@@ -174,7 +178,7 @@ def load_case(path: str | Path) -> Case:
         _check_events(events, lab("events.csv"), units, area_ids, col)
         if len(events) == 0:
             col.error(lab("events.csv"), "has no rows: at least one event is required", 1)
-    if areas is not None and len(areas) > 1 and not col.problems:
+    if areas is not None and len(areas) > 1 and not col.problems and not nodal:
         _check_connected(areas, links, lab("links.csv"), col)
 
     periods: tuple = ()
@@ -256,6 +260,7 @@ def load_case(path: str | Path) -> Case:
         series=series,
         hold_periods=settings.get("droop.hold_periods"),
         co_optimise=bool(settings.get("energy.co_optimise", False)),
+        nodal=net,
     )
     # checks that need the whole case (per-period outputs, the nadir check's areas)
     check_trip_signs(case, events["_line"].to_numpy(), lab("events.csv"), col)

@@ -15,6 +15,7 @@ from optreserve.cli.common import (
     STRICT_HELP,
     clean,
 )
+from optreserve.cli.importing import add_import_parser
 from optreserve.cli.snapshot import _add_report_parser, cmd_check, cmd_generate, cmd_solve
 from optreserve.cli.studies import _add_retune_parser, _add_simulate_parser, _add_study_parsers
 from optreserve.errors import CaseError, InfeasibleError, OptreserveError
@@ -97,6 +98,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_retune_parser(sub)
     _add_simulate_parser(sub)
     _add_study_parsers(sub)
+    add_import_parser(sub)
     return p
 
 

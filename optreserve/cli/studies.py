@@ -7,6 +7,7 @@ import sys
 import time
 from pathlib import Path
 
+from optreserve.case.nodal import area_equivalent
 from optreserve.case.reader import load_case
 from optreserve.cli.common import (
     EXIT_CASES_FAILED,
@@ -131,6 +132,7 @@ def cmd_simulate(args) -> int:
     case = load_case(args.case)
     _warn(case, args.quiet, getattr(args, "strict", False))
     allocation = read_allocation(args.allocation, case)
+    case = area_equivalent(case) if case.is_nodal else case  # one frequency per area
     sim = simulate(case, allocation, events=None if args.all else args.event,
                    period=args.period, duration_s=args.duration)
     sim.write(out_dir, force=args.force)

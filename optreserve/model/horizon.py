@@ -11,6 +11,7 @@ import scipy.sparse as sp
 
 from optreserve.case.data import Case
 from optreserve.case.products import ENERGY_COLS, energy_caps, trip_members, unit_flags
+from optreserve.case.nodal import area_level
 from optreserve.network.ptdf import ptdf
 
 
@@ -222,6 +223,7 @@ class Horizon:
 
 def prepare(case: Case) -> Horizon:
     """Stack the case over periods and event instances (no per-period DataFrames)."""
+    case = area_level(case)  # a nodal case's branches have rows of their own (nodal_flows)
     T = case.n_periods
     N = len(case.units)
     apos = {a: k for k, a in enumerate(case.areas["area"])}

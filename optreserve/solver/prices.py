@@ -45,6 +45,9 @@ def _attach_prices(result: Result, lp: LinearProgram, info: ModelInfo, out: Outc
         for name in ("flow_hi", "flow_lo"):
             yr = y[lp.row_blocks[name].slice].reshape(len(live), n_l)
             price[live] -= (yr * g).sum(axis=1)
+    if "nodal_flow" in lp.row_blocks:  # nodal cases: model/nodal_flows.py
+        m, g = info.nodal_rows.price_terms(lp, info, o.x)
+        np.subtract.at(price, m, y[lp.row_blocks["nodal_flow"].slice] * g)
     if "flow_x" in lp.row_blocks:  # co-optimised flows: dP sits in the bounds of its rows
         live = np.nonzero((hz.dP > 0) | (hz.dP_var >= 0))[0]
         t = hz.inst_t[live]

@@ -6,6 +6,7 @@ from __future__ import annotations
 import numpy as np
 
 from optreserve.case.data import Case
+from optreserve.case.nodal import area_level
 from optreserve.errors import VerificationError
 from optreserve.model.build import ModelInfo
 from optreserve.model.horizon import (Horizon, direction_key, effective_factor,
@@ -70,6 +71,7 @@ def exact_points(info: ModelInfo, lp: LinearProgram, x: np.ndarray) -> BatchPoin
 
 def evaluate_allocation(case: Case, hz: Horizon, gain, r_up, r_dn) -> BatchPoints:
     """Independent settled points of every instance for per-period gains and headroom."""
+    case = area_level(case)  # nodal flows: verify/nodal.py (solver/rowgen.py)
     return evaluate(case, hz, gain, r_up, r_dn)
 
 

@@ -46,6 +46,10 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
       by price_step MW (default max(1 MW, 1 %)) for incremental prices (solver/incremental.py;
       not with extend, whose objective is not the cost).
     Raises InfeasibleError (with a diagnosis) when no allocation meets the limits."""
+    if case.is_nodal:  # buses.csv: lazy sparse flow rows (solver/rowgen.py)
+        from optreserve.solver.rowgen import solve_nodal
+
+        return solve_nodal(case, engine, time_limit, mip_gap, relax, verbose, extend, hz)
     t_start = time.perf_counter()
     clock = Clock()  # verify, nadir_check, prices: timings_s keys beside build and solve
     time_limit = time_limit if time_limit is not None else case.solver.time_limit_s

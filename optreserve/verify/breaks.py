@@ -23,6 +23,7 @@ import numpy as np
 import pandas as pd
 
 from optreserve.case.data import Case
+from optreserve.case.nodal import area_level
 from optreserve.verify.settle import BatchPoints, settle_instances
 
 # A limit counts as broken beyond these; the same margins the solve's verification applies.
@@ -49,6 +50,7 @@ def evaluate(case: Case, inst, gain, r_up, r_dn) -> BatchPoints:
     """Independent settled points of every instance for per-period gains and headroom (T, N).
     A direction a unit does not provide in holds no headroom there, so the headroom alone
     (min(K (|df| - d), r)) decides its response: no direction mask is applied on top."""
+    case = area_level(case)  # a nodal case's branch flows: verify/nodal.py
     apos = {a: k for k, a in enumerate(case.areas["area"])}
     return settle_instances(
         inst.dP, inst.sigma, inst.inst_t, inst.inst_area, inst.trip, gain, r_up, r_dn,
@@ -84,6 +86,7 @@ def what_breaks(case: Case, inst, gain, r_up, r_dn, limit_hz: float,
     """Every limit the allocation (gain, r_up, r_dn per period, (T, N)) breaks, one row each
     (COLUMNS). limit_hz: the settled bound it is held to; nadir_short (M,): MW s short per
     instance from the nadir rows (None: not checked)."""
+    case = area_level(case)  # the area-level limits; a nodal case's branches: verify/nodal.py
     pts = evaluate(case, inst, gain, r_up, r_dn) if points is None else points
     labels = [str(p) for p in case.periods] if case.is_horizon else [""] * int(inst.T)
     names = list(inst.inst_name)
