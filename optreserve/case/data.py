@@ -65,6 +65,7 @@ class Case:
     series: dict = field(default_factory=dict)
     hold_periods: int | None = None  # droop fixed per block of N periods; None = whole horizon
     co_optimise: bool = False  # [energy] co_optimise: outputs become decisions (energy price)
+    response_limit: str = "headroom"  # [dynamics]: "headroom" or "room" (governor_columns.py)
 
     # --- horizon ---
     @property

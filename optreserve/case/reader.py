@@ -22,6 +22,7 @@ from typing import Any, Callable
 import numpy as np
 import pandas as pd
 
+from optreserve.case.governor_columns import apply_governor_columns
 from optreserve.case.data import Case, DroopSettings, Limits, SolverSettings
 from optreserve.case.rules import fill_limits, rule_warnings
 from optreserve.errors import CaseError, Problem
@@ -580,6 +581,7 @@ def load_case(path: str | Path) -> Case:
         hold_periods=settings.get("droop.hold_periods"),
         co_optimise=bool(settings.get("energy.co_optimise", False)),
     )
+    case = apply_governor_columns(case, folder)  # governor models: case/governor_columns.py
     return case.replace(read_time_s=time.perf_counter() - t0)
 
 
