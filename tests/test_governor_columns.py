@@ -96,3 +96,18 @@ def test_cli_check_bad_governor_exits_2(case_dir, capsys):
     assert cli.main(["check", str(folder)]) == 2
     err = capsys.readouterr().err
     assert "units.csv row 2 column governor_lag_s" in err or "row 2 column water_time_s" in err
+
+
+def test_transient_link_limit_read_and_checked(case_dir):
+    areas = AREAS + [{"area": "B", "load_mw": 500.0}]
+    units = _units() + [unit("G3", "B", 300, 200, inertia_s=4.0, activation_time_s=10.0)]
+    links = [{"link": "AB", "from_area": "A", "to_area": "B", "reactance_pu": 0.1,
+              "limit_mw": 200.0, "transient_limit_mw": 260.0}]
+    c = optreserve.load_case(write_case(case_dir(), settings(), units, areas, EVENTS, links))
+    assert c.links["transient_limit_mw"].iloc[0] == 260.0
+    assert not any("transient_limit_mw" in w for w in c.warnings)
+    links[0]["transient_limit_mw"] = -5
+    with pytest.raises(CaseError) as exc:
+        optreserve.load_case(write_case(case_dir(), settings(), units, areas, EVENTS, links))
+    p = exc.value.problems[0]
+    assert p.file.endswith("links.csv") and p.row == 2 and p.column == "transient_limit_mw"

@@ -1,5 +1,6 @@
-"""Governor-model columns of units.csv and the [dynamics] section of case.toml (case format
-version 2, "Governor models"), read and checked after the rest of the case.
+"""Governor-model columns of units.csv, the [dynamics] section of case.toml (case format
+version 2, "Governor models") and links.csv transient_limit_mw (the limit `simulate` checks
+transient tie loading against), read and checked after the rest of the case.
 
 Kept apart from reader.py so that the governor contract has one home: reader.py calls
 `apply_governor_columns(case, folder)` once, on a case that has already passed every other
@@ -77,6 +78,19 @@ def apply_governor_columns(case: Case, folder: str | Path) -> Case:
             units[c] = "lag" if c == "governor" else (0.0 if c == "delay_s" else math.nan)
     units["delay_s"] = np.nan_to_num(units["delay_s"].to_numpy(float))
 
+    # links.csv transient_limit_mw: what a tie may carry during the swing (simulate)
+    links = case.links
+    lfile = folder / "links.csv"
+    lraw = _read_csv(lfile, str(lfile), _Collector()) if lfile.is_file() else None
+    if lraw is not None and "transient_limit_mw" in lraw.header:
+        lcol = _Collector()
+        ldf = _typed_table(lraw, [Col("transient_limit_mw", "float", False, math.nan,
+                                      check=lambda v: None if v > 0 else "must be > 0")], lcol)
+        withdraw(str(lfile), "transient_limit_mw", "unknown column ignored", lraw.header_line)
+        probs += lcol.problems
+        if ldf is not None and len(ldf) == len(links):
+            links = links.assign(transient_limit_mw=ldf["transient_limit_mw"].to_numpy(float))
+
     # a unit's governor is a setting of the unit, not a time series
     per = folder / "units_by_period.csv"
     if per.is_file():
@@ -113,7 +127,8 @@ def apply_governor_columns(case: Case, folder: str | Path) -> Case:
                 response_limit = v.strip().lower()
     if probs:
         raise CaseError(probs)
-    return case.replace(units=units, warnings=tuple(warnings), response_limit=response_limit)
+    return case.replace(units=units, links=links, warnings=tuple(warnings),
+                        response_limit=response_limit)
 
 
 def _is_new_model(units: pd.DataFrame, i: int) -> bool:

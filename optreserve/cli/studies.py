@@ -135,6 +135,8 @@ def cmd_simulate(args) -> int:
           + f": {len(sm)} event(s) simulated")
     print(_table(["event", "size MW", "nadir Hz", "at s", "RoCoF Hz/s", "dP fn/2H",
                   "settles Hz", "settled", "nadir", "RoCoF"], rows, set(range(1, 7))))
+    for note in sim.overloaded_links():  # transient tie loading (simulation_links.csv)
+        print(f"note: {note}", file=sys.stderr)
     broken = int(sm[["settled_ok", "nadir_ok", "rocof_ok"]].eq(False).any(axis=1).sum())
     if broken:
         print(f"{broken} event(s) break a limit in the simulation", file=sys.stderr)

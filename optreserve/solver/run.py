@@ -163,7 +163,8 @@ def _nadir_round(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
     live = np.nonzero((hz.dP > 0) & (hz.H_sys > 0))[0]
     if N_max is None or len(live) == 0 or len(hz.dP) > NADIR_SIM_MAX_INSTANCES:
         return False
-    from optreserve.dynamics.simulate import build_system, simulate_event
+    from optreserve.dynamics.simulate import simulate_event
+    from optreserve.dynamics.system import build_system
 
     progress.step("simulating events against the nadir limit")
     gain, r_up, r_dn = period_values(lp, info, out.x)
