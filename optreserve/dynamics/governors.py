@@ -20,8 +20,9 @@ State space (cascade, two states per unit; lag and inverter leave x2 unobserved)
     t2 x2' = x1 - x2              (reheater, or the water column's lag)
     y      = a x1 + b x2,   a = z / t2, b = 1 - z / t2
 (reheat: a = F_hp, b = 1 - F_hp; hydro: a = -2, b = 3, because (1 - sT_w)/(1 + sT_w/2) =
--2 + 3/(1 + sT_w/2)). Outputs never overshoot the demand's final value for these
-parameters (response.py), so a limiter on the demand bounds the mechanical response too.
+-2 + 3/(1 + sT_w/2)). A simulator's limiter belongs on the demand u: no step response
+overshoots, so a rising demand limited to the headroom keeps the mechanical response within
+it (response.py says when hydro does not).
 
 The exact zero-order-hold step (ZOH) makes a simulator with demand held constant over each
 step of length h exact, including a delay that is not a multiple of h (the step is split at
@@ -148,6 +149,9 @@ class GovernorSet:
         for f in ("t1", "t2", "z", "delay_s"):
             object.__setattr__(self, f, np.asarray(getattr(self, f), float).reshape(-1))
         object.__setattr__(self, "kind", np.asarray(self.kind, np.int8).reshape(-1))
+        if not (np.all((self.kind >= 0) & (self.kind < len(MODELS)))
+                and all(len(getattr(self, f)) == self.n for f in ("t1", "t2", "z", "delay_s"))):
+            raise ValueError("kind must be model codes 0..3 and all arrays of one length")
         # the closed forms and the ZOH divide by t1 and t2: refuse what no bound would pass
         if not (np.all(self.t1 > 0) and np.all(self.t2 > 0) and np.all(np.isfinite(self.z))
                 and np.all(self.delay_s >= 0) and np.all(np.isfinite(self.delay_s))):
@@ -216,6 +220,11 @@ class GovernorSet:
         return cls.from_arrays(names, LAG_PER_ACTIVATION * act, _col(u, "governor_lag_s"),
                                _col(u, "reheat_time_s"), _col(u, "hp_fraction"),
                                _col(u, "water_time_s"), np.nan_to_num(_col(u, "delay_s")))
+
+    def subset(self, idx) -> GovernorSet:
+        """The units idx (index or boolean array), in that order."""
+        return GovernorSet(self.kind[idx], self.t1[idx], self.t2[idx], self.z[idx],
+                           self.delay_s[idx])
 
     def state_space(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """Continuous-time (A (N,2,2), B (N,2), C (N,2), delay_s (N,)); D = 0 and the delay
