@@ -98,7 +98,7 @@ def test_state_space_realises_contract_tf_and_zoh_matches_cont2discrete():
     """Our (A, B, C) realise the contract TF (scipy.signal.ss2tf), and the closed-form ZOH
     equals scipy.signal.cont2discrete(method='zoh') for an undelayed unit."""
     gov, dl, tfs = tf_list(random_units(seed=RNG_SEED + 3))
-    A, B, C, D = gov.state_space()
+    A, B, C, _ = gov.state_space()
     h = 0.137
     z = gov.zoh(h)
     for i, (num, den) in enumerate(tfs):
@@ -356,5 +356,8 @@ def test_validation_rejects_out_of_range_and_missing():
     assert GovernorSet.from_table(bad, default_activation_time_s=30.0).t1[0] == 7.5
     assert check_table(bad, mask=np.array([False, True, True, True, True])) == []
     assert BOUNDS["hp_fraction"][:3] == (0.0, 1.0, False)
+    # a version 1 table (no governor columns): every unit a lag of activation_time_s / 4
+    v1 = GovernorSet.from_table(units_table(activation_time_s=[30.0, 8.0]))
+    assert list(v1.kind) == [0, 0] and list(v1.t1) == [7.5, 2.0]
     with pytest.raises(ValueError):
         GovernorSet.from_arrays(["lag"], tau_s=0.0)

@@ -54,8 +54,8 @@ LAG_PER_ACTIVATION = 0.25
 # T_g 0.1-0.3 s, T_rh 4-10 s, F_hp about 0.3, T_w 0.5-4 s at full load).
 BOUNDS: dict[str, tuple[float, float, bool, str]] = {
     "activation_time_s": (0.04, 120.0, True, "tau = activation_time_s/4 in [0.01, 30] s"),
-    "governor_lag_s": (0.01, 30.0, True, "faster than 10 ms is no governor loop; "
-                                         "slower than 30 s is no primary response"),
+    "governor_lag_s": (0.01, 30.0, True, ("faster than 10 ms is no governor loop; "
+                                          "slower than 30 s is no primary response")),
     "reheat_time_s": (0.1, 50.0, True, "typical 4-10 s"),
     "hp_fraction": (0.0, 1.0, False, "0 < F_hp <= 1 (share of the HP stage)"),
     "water_time_s": (0.05, 10.0, True, "typical 0.5-4 s at full load"),
@@ -106,8 +106,9 @@ def check_table(units: pd.DataFrame, mask: np.ndarray | None = None) -> list[Gov
     n = len(units)
     mask = np.ones(n, bool) if mask is None else np.asarray(mask, bool)
     names = _names(units)
+    known = np.isin(names, MODELS)
     probs = [GovernorProblem(int(i), "governor", f"unknown model {names[i]!r} (one of "
-                             f"{', '.join(MODELS)})") for i in np.nonzero(~np.isin(names, MODELS))[0]]
+                             f"{', '.join(MODELS)})") for i in np.nonzero(~known)[0]]
     for col in BOUNDS:
         need = np.zeros(n, bool)
         for model, cols in REQUIRED.items():
@@ -115,7 +116,7 @@ def check_table(units: pd.DataFrame, mask: np.ndarray | None = None) -> list[Gov
                 need |= names == model
         probs += _range_problems(col, _col(units, col), need & mask)
     d = _col(units, "delay_s")
-    for i in np.nonzero((names != "inverter") & np.isin(names, MODELS) & (np.nan_to_num(d) != 0))[0]:
+    for i in np.nonzero((names != "inverter") & known & (np.nan_to_num(d) != 0))[0]:
         probs.append(GovernorProblem(int(i), "delay_s", f"applies to inverter only "
                                      f"(unit's governor is {names[i]})"))
     return sorted(probs)
