@@ -361,3 +361,21 @@ def test_validation_rejects_out_of_range_and_missing():
     assert list(v1.kind) == [0, 0] and list(v1.t1) == [7.5, 2.0]
     with pytest.raises(ValueError):
         GovernorSet.from_arrays(["lag"], tau_s=0.0)
+
+
+def test_nadir_coefficient_shapes_broadcast_like_the_rows():
+    """(events M, points K) times with per-event RoCoF (M, 1) and per-unit reach (N,) give the
+    rows' (M, K, N) array, equal entry by entry to one-point calls (shape contract only; the
+    values are checked against the closed-loop simulation above)."""
+    gov = random_units(n_per_model=2)[0]
+    rng = np.random.default_rng(RNG_SEED + 8)
+    times = rng.uniform(0.5, 30, (3, 4))
+    rocof = rng.uniform(0.05, 1.0, (3, 1))
+    reach = rng.uniform(0.0, 0.8, gov.n)
+    coef = R.nadir_energy_coef(gov, times, reach, rocof)
+    assert coef.shape == (3, 4, gov.n)
+    for m, k in [(0, 0), (2, 3), (1, 2)]:
+        one = R.nadir_energy_coef(gov, times[m, k], reach, rocof[m, 0])
+        assert np.allclose(coef[m, k], one, rtol=1e-13, atol=1e-13)
+    with pytest.raises(ValueError):
+        R.nadir_energy_coef(gov, times, reach, 0.0)
