@@ -98,7 +98,7 @@ def test_state_space_realises_contract_tf_and_zoh_matches_cont2discrete():
     """Our (A, B, C) realise the contract TF (scipy.signal.ss2tf), and the closed-form ZOH
     equals scipy.signal.cont2discrete(method='zoh') for an undelayed unit."""
     gov, dl, tfs = tf_list(random_units(seed=RNG_SEED + 3))
-    A, B, C, D = gov.state_space()
+    A, B, C, _ = gov.state_space()
     h = 0.137
     z = gov.zoh(h)
     for i, (num, den) in enumerate(tfs):
@@ -356,5 +356,26 @@ def test_validation_rejects_out_of_range_and_missing():
     assert GovernorSet.from_table(bad, default_activation_time_s=30.0).t1[0] == 7.5
     assert check_table(bad, mask=np.array([False, True, True, True, True])) == []
     assert BOUNDS["hp_fraction"][:3] == (0.0, 1.0, False)
+    # a version 1 table (no governor columns): every unit a lag of activation_time_s / 4
+    v1 = GovernorSet.from_table(units_table(activation_time_s=[30.0, 8.0]))
+    assert list(v1.kind) == [0, 0] and list(v1.t1) == [7.5, 2.0]
     with pytest.raises(ValueError):
         GovernorSet.from_arrays(["lag"], tau_s=0.0)
+
+
+def test_nadir_coefficient_shapes_broadcast_like_the_rows():
+    """(events M, points K) times with per-event RoCoF (M, 1) and per-unit reach (N,) give the
+    rows' (M, K, N) array, equal entry by entry to one-point calls (shape contract only; the
+    values are checked against the closed-loop simulation above)."""
+    gov = random_units(n_per_model=2)[0]
+    rng = np.random.default_rng(RNG_SEED + 8)
+    times = rng.uniform(0.5, 30, (3, 4))
+    rocof = rng.uniform(0.05, 1.0, (3, 1))
+    reach = rng.uniform(0.0, 0.8, gov.n)
+    coef = R.nadir_energy_coef(gov, times, reach, rocof)
+    assert coef.shape == (3, 4, gov.n)
+    for m, k in [(0, 0), (2, 3), (1, 2)]:
+        one = R.nadir_energy_coef(gov, times[m, k], reach, rocof[m, 0])
+        assert np.allclose(coef[m, k], one, rtol=1e-13, atol=1e-13)
+    with pytest.raises(ValueError):
+        R.nadir_energy_coef(gov, times, reach, 0.0)

@@ -20,8 +20,9 @@ State space (cascade, two states per unit; lag and inverter leave x2 unobserved)
     t2 x2' = x1 - x2              (reheater, or the water column's lag)
     y      = a x1 + b x2,   a = z / t2, b = 1 - z / t2
 (reheat: a = F_hp, b = 1 - F_hp; hydro: a = -2, b = 3, because (1 - sT_w)/(1 + sT_w/2) =
--2 + 3/(1 + sT_w/2)). Outputs never overshoot the demand's final value for these
-parameters (response.py), so a limiter on the demand bounds the mechanical response too.
+-2 + 3/(1 + sT_w/2)). A simulator's limiter belongs on the demand u: no step response
+overshoots, so a rising demand limited to the headroom keeps the mechanical response within
+it (response.py says when hydro does not).
 
 The exact zero-order-hold step (ZOH) makes a simulator with demand held constant over each
 step of length h exact, including a delay that is not a multiple of h (the step is split at
@@ -53,8 +54,8 @@ LAG_PER_ACTIVATION = 0.25
 # T_g 0.1-0.3 s, T_rh 4-10 s, F_hp about 0.3, T_w 0.5-4 s at full load).
 BOUNDS: dict[str, tuple[float, float, bool, str]] = {
     "activation_time_s": (0.04, 120.0, True, "tau = activation_time_s/4 in [0.01, 30] s"),
-    "governor_lag_s": (0.01, 30.0, True, "faster than 10 ms is no governor loop; "
-                                         "slower than 30 s is no primary response"),
+    "governor_lag_s": (0.01, 30.0, True, ("faster than 10 ms is no governor loop; "
+                                          "slower than 30 s is no primary response")),
     "reheat_time_s": (0.1, 50.0, True, "typical 4-10 s"),
     "hp_fraction": (0.0, 1.0, False, "0 < F_hp <= 1 (share of the HP stage)"),
     "water_time_s": (0.05, 10.0, True, "typical 0.5-4 s at full load"),
@@ -105,8 +106,9 @@ def check_table(units: pd.DataFrame, mask: np.ndarray | None = None) -> list[Gov
     n = len(units)
     mask = np.ones(n, bool) if mask is None else np.asarray(mask, bool)
     names = _names(units)
+    known = np.isin(names, MODELS)
     probs = [GovernorProblem(int(i), "governor", f"unknown model {names[i]!r} (one of "
-                             f"{', '.join(MODELS)})") for i in np.nonzero(~np.isin(names, MODELS))[0]]
+                             f"{', '.join(MODELS)})") for i in np.nonzero(~known)[0]]
     for col in BOUNDS:
         need = np.zeros(n, bool)
         for model, cols in REQUIRED.items():
@@ -114,7 +116,7 @@ def check_table(units: pd.DataFrame, mask: np.ndarray | None = None) -> list[Gov
                 need |= names == model
         probs += _range_problems(col, _col(units, col), need & mask)
     d = _col(units, "delay_s")
-    for i in np.nonzero((names != "inverter") & np.isin(names, MODELS) & (np.nan_to_num(d) != 0))[0]:
+    for i in np.nonzero((names != "inverter") & known & (np.nan_to_num(d) != 0))[0]:
         probs.append(GovernorProblem(int(i), "delay_s", f"applies to inverter only "
                                      f"(unit's governor is {names[i]})"))
     return sorted(probs)
@@ -148,6 +150,9 @@ class GovernorSet:
         for f in ("t1", "t2", "z", "delay_s"):
             object.__setattr__(self, f, np.asarray(getattr(self, f), float).reshape(-1))
         object.__setattr__(self, "kind", np.asarray(self.kind, np.int8).reshape(-1))
+        if not (np.all((self.kind >= 0) & (self.kind < len(MODELS)))
+                and all(len(getattr(self, f)) == self.n for f in ("t1", "t2", "z", "delay_s"))):
+            raise ValueError("kind must be model codes 0..3 and all arrays of one length")
         # the closed forms and the ZOH divide by t1 and t2: refuse what no bound would pass
         if not (np.all(self.t1 > 0) and np.all(self.t2 > 0) and np.all(np.isfinite(self.z))
                 and np.all(self.delay_s >= 0) and np.all(np.isfinite(self.delay_s))):
@@ -216,6 +221,11 @@ class GovernorSet:
         return cls.from_arrays(names, LAG_PER_ACTIVATION * act, _col(u, "governor_lag_s"),
                                _col(u, "reheat_time_s"), _col(u, "hp_fraction"),
                                _col(u, "water_time_s"), np.nan_to_num(_col(u, "delay_s")))
+
+    def subset(self, idx) -> GovernorSet:
+        """The units idx (index or boolean array), in that order."""
+        return GovernorSet(self.kind[idx], self.t1[idx], self.t2[idx], self.z[idx],
+                           self.delay_s[idx])
 
     def state_space(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """Continuous-time (A (N,2,2), B (N,2), C (N,2), delay_s (N,)); D = 0 and the delay
