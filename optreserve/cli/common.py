@@ -7,6 +7,8 @@ import sys
 from optreserve.progress import use_colour
 
 EXIT_OK, EXIT_OTHER, EXIT_INPUT, EXIT_INFEASIBLE = 0, 1, 2, 3
+# solved, but the simulated nadir of the allocation could not be confirmed within the limit
+EXIT_NADIR_UNCONFIRMED = 4
 
 
 def _table(headers: list[str], rows: list[list[str]], right: set[int] | None = None) -> str:

@@ -213,7 +213,10 @@ def _nadir_round(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
     # per violating instance: the candidate's own simulated responses at its nadir time as
     # coefficients, and the energy that would have kept the dip at the limit
     again = _nadir_simulate(case, sub, gain, r_up, r_dn, energy_for=bad)
-    q = _q_values(lp, hz, out.x)  # (M, N) the candidate's q_a + q_b
+    # what each provider's demand could reach by the limit: min(r, K (N - d)^+) (the model's
+    # q_a + q_b cannot exceed it; in a relaxed model q itself is not yet meaningful)
+    r_dir = np.where((hz.sigma > 0)[:, None], r_up[hz.inst_t], r_dn[hz.inst_t])
+    q = np.minimum(r_dir, gain[hz.inst_t] * np.maximum(N_max - hz.d_hz, 0.0)[None, :])
     f_n = case.nominal_frequency_hz
     from optreserve.model.nadir import fresh_coef
 
@@ -241,16 +244,6 @@ def _sub_hz(hz, idx):
     return SimpleNamespace(inst_t=hz.inst_t[idx], sigma=hz.sigma[idx], dP=hz.dP[idx],
                            inst_area=hz.inst_area[idx], trip=hz.trip[idx],
                            absent=hz.absent[idx])
-
-
-def _q_values(lp: LinearProgram, hz, x) -> np.ndarray:
-    """(M, N) q_a + q_b of each instance's direction in a solution (0 without nadir rows)."""
-    N, M = hz.N, len(hz.dP)
-    if "nadir_q_up" not in lp.var_blocks:
-        return np.zeros((M, N))
-    up = (lp.value(x, "nadir_q_up") + lp.value(x, "nadir_qb_up")).reshape(hz.T, N)
-    dn = (lp.value(x, "nadir_q_dn") + lp.value(x, "nadir_qb_dn")).reshape(hz.T, N)
-    return np.where((hz.sigma > 0)[:, None], up[hz.inst_t], dn[hz.inst_t])
 
 
 def _nadir_at_most(case: Case, hz) -> tuple[float, int]:
