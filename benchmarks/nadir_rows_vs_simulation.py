@@ -4,7 +4,9 @@ One area, one provider (plus a non-providing unit holding the stored energy), a 
 dP, nadir limit N. For each governor model: the least q (MW the provider must deliver, with
 gain q / (N - d) and headroom q) that the nadir rows (model/nadir.py) accept, and the least q
 whose simulated nadir (dynamics/) meets N (bisection). The ratio rows / simulation >= 1 is
-how conservative the rows are (1 = exact).
+how conservative the rows are (1 = exact). The rows cannot see that a hydro governor with
+too much gain is unstable (ideal penstock, permanent droop only): the simulation can, which is
+why it has the last word in a solve.
 
     python benchmarks/nadir_rows_vs_simulation.py     # Markdown table
 """
@@ -61,9 +63,16 @@ def sim_nadir(case, q, N):
     return abs(tr.nadir_hz - case.nominal_frequency_hz)
 
 
-def sim_q(case, N):
-    lo, hi = 0.0, 5000.0
-    for _ in range(40):
+def sim_q(case, N, dP=100.0):
+    """The least q meeting N: a scan (a hydro unit with too much gain is unstable, so the
+    nadir is not monotone in q), then bisection below the first q that passes."""
+    grid = np.linspace(0.5 * dP, 6 * dP, 221)
+    ok = [sim_nadir(case, q, N) <= N for q in grid]
+    if not any(ok):
+        return float("nan")
+    k = ok.index(True)
+    lo, hi = (grid[k - 1] if k else 0.0), grid[k]
+    for _ in range(30):
         mid = 0.5 * (lo + hi)
         if sim_nadir(case, mid, N) <= N:
             hi = mid
@@ -81,7 +90,7 @@ def main() -> int:
     with tempfile.TemporaryDirectory() as tmp:
         for k, (name, gov) in enumerate(MODELS.items()):
             case = case_for(Path(tmp) / f"c{k}", gov, N, dP)
-            qr, qs = rows_q(case), sim_q(case, N)
+            qr, qs = rows_q(case), sim_q(case, N, dP)
             print(f"| {name} | {qr:.1f} | {qs:.1f} | {qr / qs:.2f} |")
     return 0
 

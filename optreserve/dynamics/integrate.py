@@ -26,7 +26,6 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.linalg import expm
 
-from optreserve.dynamics.governors import GovernorSet
 from optreserve.dynamics.system import System, swing_matrices, tie_damping
 
 STEP_S = 0.01
@@ -121,7 +120,7 @@ class EventBatch:
         self.agg = np.zeros((len(g), A))
         self.agg[np.arange(len(g)), self.ga] = 1.0
         gov = sysm.gov
-        self.gov = GovernorSet(gov.kind[g], gov.t1[g], gov.t2[g], gov.z[g], gov.delay_s[g])
+        self.gov = gov.subset(g)
         zoh = self.gov.zoh(h)
         self.phi = zoh.phi
         self.gn, self.gp = zoh.g_now, zoh.g_prev

@@ -10,8 +10,13 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from optreserve.case.data import Case
-from optreserve.dynamics.response import (FULL, Envelope, _conv, energy_lower_bound,
-                                          min_step_response)
+from optreserve.dynamics.response import (
+    FULL,
+    Envelope,
+    _conv,
+    energy_lower_bound,
+    min_step_response,
+)
 from optreserve.dynamics.system import governor_set
 from optreserve.model.horizon import ELASTIC_PENALTY, Horizon
 

@@ -296,8 +296,9 @@ def _nadir_give_up(case: Case, hz, nadir: dict) -> None:
         msg = (f"nadir limit {N_max:g} Hz cannot be met: with every provider at its most "
                f"(highest gain, all its headroom) event {name} still dips {dip:.3f} Hz in "
                "simulation")
-        raise InfeasibleError(msg, [f"event {name}: simulated nadir {dip:.3f} Hz with every "
-                                    f"provider at its most (limit {N_max:g} Hz)"])
+        line = (f"event {name}: simulated nadir {dip:.3f} Hz with every provider at its most "
+                f"(limit {N_max:g} Hz)")
+        raise InfeasibleError(msg, [line])
     nadir["confirmed"] = False
 
 
