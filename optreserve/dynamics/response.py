@@ -53,9 +53,10 @@ times a ramp that starts at t_N - (N - d_i)/rho and reaches 1 at t_N (when r_i c
 true lower envelope reaches r_i sooner, so this ramp is still below it): lo. Then
 E_i(t_N) >= q_i e_i(t_N) with e_i = nadir_energy_coef(t_N), linear in q_i, and the row
     sum_i q_i e_i(t_k) >= dP t_k - 2 H N / f_n          (q_i <= r_i, q_i <= K_i (N - d_i)^+)
-held (with a margin) at the candidate times t_k leaves no first crossing there. Between the
-rows' time points the bound is not enforced: the rows are a conservative filter and the
-simulation of the allocation decides (formulation.md).
+held (with a margin) at the candidate times t_k leaves no first crossing there (x <= rho t, so
+no row is needed before N / rho; from 2 H N / (f_n dP) >= N / rho on, the ramps start at or
+after 0). Between the rows' time points the bound is not enforced: the rows are a
+conservative filter and the simulation of the allocation decides (formulation.md).
 """
 
 from __future__ import annotations
