@@ -129,10 +129,11 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         x_hat = np.where(live & np.isfinite(exact), exact, info.x_hat)
         points = None
 
-    _nadir_final(case, info, lp, out, nadir)
+    lp, info, out, swapped = _nadir_final(case, info, lp, out, nadir)
+    points = None if swapped else points
     result = _make_result(case, lp, info, out, relax, points)
     result.nadir_check = {k: nadir[k] for k in ("checked", "rounds", "worst_hz", "confirmed",
-                                                 "cuts", "relaxed")}
+                                                 "cuts", "relaxed", "loosened")}
     if nadir["confirmed"] is False:
         result.status = "nadir_unconfirmed"
     # our own tie-break price on headroom (model.TIE_BREAK_PER_MW_H) makes HiGHS remark on
@@ -163,13 +164,18 @@ NADIR_ROUNDS = 8
 # cuts aim this far inside the limit, so that a candidate does not stop a hair outside
 NADIR_MARGIN = 0.995
 NADIR_TOL_HZ = 1e-5
+# The rows are conservative: a confirmed allocation whose dips stay well inside the limit is
+# re-solved with each instance's rows loosened by N / dip (at most this many times), and the
+# cheapest confirmed allocation is kept.
+NADIR_LOOSEN = 3
 
 
 def _nadir_state(case: Case) -> dict:
     from optreserve.model.nadir import NadirGuide
 
     return {"scale": None, "guide": NadirGuide(), "rounds": 0, "checked": False,
-            "worst_hz": None, "confirmed": None, "cuts": 0, "relaxed": False}
+            "worst_hz": None, "confirmed": None, "cuts": 0, "relaxed": False, "loosened": 0,
+            "best": None}
 
 
 def _nadir_simulate(case: Case, hz, gain, r_up, r_dn, energy_for=None):
@@ -208,6 +214,12 @@ def _nadir_round(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
     bad = chk.dip_hz > N_max + NADIR_TOL_HZ
     nadir["confirmed"] = not bad.any()
     nadir["out"] = out
+    g = nadir["guide"]
+    if cut and not g.cuts and not g.relaxed:
+        if not bad.any():
+            return _nadir_loosen(nadir, hz, live, chk.dip_hz, N_max, (lp, info, out))
+        if nadir["best"] is not None:  # loosened too far: the last confirmed answer stands
+            return False
     if not bad.any() or nadir["rounds"] >= NADIR_ROUNDS or not cut:
         return False
     # per violating instance: the candidate's own simulated responses at its nadir time as
@@ -257,6 +269,22 @@ def _nadir_at_most(case: Case, hz) -> tuple[float, int]:
     return float(chk.dip_hz[j]), int(live[j])
 
 
+def _nadir_loosen(nadir: dict, hz, live, dip, N_max: float, candidate) -> bool:
+    """A confirmed candidate: keep it if it is the cheapest so far, and ask for a solve with
+    each instance's rows loosened by N / dip while dips stay well inside the limit."""
+    best = nadir["best"]
+    if best is None or candidate[2].objective < best[2].objective:
+        nadir["best"] = (*candidate, float(dip.max()))
+    if nadir["loosened"] >= NADIR_LOOSEN or dip.max() >= NADIR_MARGIN * N_max:
+        return False
+    g = nadir["guide"]
+    sc = np.ones(len(hz.dP)) if g.scale is None else g.scale.copy()
+    sc[live] *= NADIR_MARGIN * N_max / np.maximum(dip, 1e-6)
+    g.scale = sc
+    nadir["loosened"] += 1
+    return True
+
+
 def _nadir_on_infeasible(case: Case, hz, nadir: dict, history: list) -> bool:
     """A solve came back infeasible. The nadir rows alone are conservative: when they make the
     first solve infeasible, solve again with them relaxed (True), the simulation and its cuts
@@ -273,15 +301,25 @@ def _nadir_on_infeasible(case: Case, hz, nadir: dict, history: list) -> bool:
 
 
 def _nadir_final(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
-                 nadir: dict) -> None:
-    """The answer returned must be the one simulated: check it when it was not, and give up
-    (InfeasibleError or unconfirmed) when it breaks the limit."""
+                 nadir: dict):
+    """The answer to return: the cheapest confirmed one when the loosened rows found any,
+    else the last; it must be the one simulated: check it when it was not, and give up
+    (InfeasibleError or unconfirmed) when it breaks the limit. Returns (lp, info, out,
+    swapped)."""
     if case.limits.max_nadir_deviation_hz is None or len(_nadir_live(case, info.hz)) == 0:
-        return
+        return lp, info, out, False
+    best = nadir["best"]
+    if best is not None and (nadir.get("out") is not out or not nadir["confirmed"]
+                             or best[2].objective < out.objective):
+        swapped = best[2] is not out
+        lp, info, out = best[:3]
+        nadir.update(out=out, confirmed=True, worst_hz=best[3])
+        return lp, info, out, swapped
     if nadir.get("out") is not out:
         _nadir_round(case, info, lp, out, nadir, cut=False)
     if nadir["confirmed"] is False and len(info.hz.dP) <= NADIR_SIM_MAX_INSTANCES:
         _nadir_give_up(case, info.hz, nadir)
+    return lp, info, out, False
 
 
 def _nadir_give_up(case: Case, hz, nadir: dict) -> None:
