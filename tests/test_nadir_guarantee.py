@@ -11,6 +11,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from conftest import settings, unit, write_case
+from scipy import signal
 from scipy.integrate import solve_ivp
 
 import optreserve
@@ -58,22 +59,45 @@ def _reference_dip(case, alloc, duration=30.0, zeta=0.05, base=100.0, event=0):
     r = al["headroom_up_mw" if sig > 0 else "headroom_down_mw"].to_numpy(float)
     if trip >= 0:
         K[trip] = 0.0
-    tau = np.nan_to_num(u["activation_time_s"].to_numpy(float), nan=4.0) / 4  # no gain: any
     d = u["deadband_mhz"].to_numpy(float) / 1000
+    # each unit's transfer function from the contract (case-format "Governor models"), in
+    # controllable canonical form (scipy.signal.tf2ss); no delays here
+    ss = [signal.tf2ss(*_governor_tf(row)) for row in u.to_dict("records")]
+    off = np.cumsum([0] + [a.shape[0] for a, *_ in ss])
 
     def rhs(t, y):
-        df, dl, pm = y[:A], y[A:A + L], y[A + L:]
+        df, dl, xg = y[:A], y[A:A + L], y[A + L:]
         P = T * dl + B * (C @ df)
         dem = sig * np.minimum(K * np.maximum(-sig * df[ua] - d, 0.0), r)
+        pm, dx = np.zeros(len(ss)), []
+        for i, (a, b, c, dd) in enumerate(ss):
+            xi = xg[off[i]:off[i + 1]]
+            dx.append(a @ xi + b[:, 0] * dem[i])
+            pm[i] = (c @ xi)[0] + dd[0, 0] * dem[i]
         ddf = F_N / (2 * H) * (np.bincount(ua, pm, minlength=A) - Pe - D * df - C.T @ P)
-        return np.r_[ddf, 2 * np.pi * (C @ df), (dem - pm) / tau]
+        return np.r_[ddf, 2 * np.pi * (C @ df), np.concatenate(dx)]
 
-    sol = solve_ivp(rhs, (0, duration), np.zeros(A + L + len(u)), method="LSODA", rtol=1e-9,
+    sol = solve_ivp(rhs, (0, duration), np.zeros(A + L + off[-1]), method="LSODA", rtol=1e-9,
                     atol=1e-10, max_step=0.01)
     return float((-sig * sol.y[:A]).max())
 
 
-def _weak_tie(folder, x=1.2, N=0.8):
+def _governor_tf(row):
+    """(num, den) of a unit's governor transfer function, written from the contract."""
+    model = row.get("governor", "lag")
+    if model == "lag":
+        return [1.0], [np.nan_to_num(row["activation_time_s"], nan=4.0) / 4, 1.0]
+    tg = row["governor_lag_s"]
+    if model == "reheat":
+        f, trh = row["hp_fraction"], row["reheat_time_s"]
+        return [f * trh, 1.0], np.polymul([tg, 1.0], [trh, 1.0])
+    if model == "hydro":
+        tw = row["water_time_s"]
+        return [-tw, 1.0], np.polymul([tg, 1.0], [tw / 2, 1.0])
+    return [1.0], [tg, 1.0]  # inverter (delay 0 in these cases)
+
+
+def _weak_tie(folder, x=1.2, N=0.8, mixed=False):
     """Two areas joined by a weak tie (x = 1.2 pu on 100 MVA), the trip in the small one."""
     units = [unit("Big_G1", "Big", 1500, 1000, 3.0, 8.0, inertia_s=5.0, activation_time_s=20.0,
                   price_up=2.0),
@@ -92,6 +116,11 @@ def _weak_tie(folder, x=1.2, N=0.8):
     events = [{"event": "trip_T", "kind": "unit_trip", "unit": "Small_T", "area": "Small"}]
     links = [{"link": "tie", "from_area": "Big", "to_area": "Small", "reactance_pu": x,
               "limit_mw": 600}]
+    if mixed:  # typical parameters (Kundur, ch. 9, from memory)
+        units[1].update(governor="reheat", governor_lag_s=0.2, reheat_time_s=7.0,
+                        hp_fraction=0.3)
+        units[2].update(governor="hydro", governor_lag_s=0.5, water_time_s=1.2)
+        units[5].update(governor="inverter", governor_lag_s=0.1)
     return write_case(folder, settings(max_dev=0.5, limits={
         "max_nadir_deviation_hz": N, "full_activation_deviation_hz": 0.5}),
         units, areas, events, links)
@@ -119,6 +148,18 @@ def test_weak_tie_exit_0_only_with_a_confirmed_allocation(case_dir):
     assert res.nadir_check["confirmed"] is True and res.nadir_check["rounds"] >= 1
     assert res.nadir_check["worst_hz"] <= 0.8 + 1e-5
     assert _reference_dip(case, res.allocation) <= 0.8 + 2e-3
+
+
+def test_weak_tie_with_mixed_governors_confirmed_independently(case_dir):
+    """Same weak tie with reheat, hydro and inverter governors: exit 0 only with an allocation
+    meeting 0.8 Hz, checked by integrating the contract's transfer functions (tf2ss) with
+    solve_ivp, sharing no code with optreserve."""
+    case = optreserve.load_case(_weak_tie(case_dir(), mixed=True))
+    res = run.solve(case)
+    assert res.status == "optimal" and res.nadir_check["confirmed"] is True
+    ref = _reference_dip(case, res.allocation)
+    assert ref <= 0.8 + 2e-3
+    assert ref == pytest.approx(res.nadir_check["worst_hz"], abs=2e-3)
 
 
 def test_no_false_infeasibility_when_the_rows_are_too_strict(case_dir):
