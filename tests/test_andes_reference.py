@@ -34,7 +34,7 @@ from conftest import build_case, settings, unit
 
 andes = pytest.importorskip("andes")
 
-from optreserve.dynamics.simulate import simulate  # noqa: E402
+from optreserve.dynamics.simulate import simulate
 
 pytestmark = pytest.mark.slow
 

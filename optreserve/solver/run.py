@@ -134,6 +134,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     result = _make_result(case, lp, info, out, relax, points)
     result.nadir_check = {k: nadir[k] for k in ("checked", "rounds", "worst_hz", "confirmed",
                                                  "cuts", "relaxed", "loosened")}
+    result.timings_s["nadir_check"] = nadir["simulate_s"]
     if nadir["confirmed"] is False:
         result.status = "nadir_unconfirmed"
     # our own tie-break price on headroom (model.TIE_BREAK_PER_MW_H) makes HiGHS remark on
@@ -175,7 +176,7 @@ def _nadir_state(case: Case) -> dict:
 
     return {"scale": None, "guide": NadirGuide(), "rounds": 0, "checked": False,
             "worst_hz": None, "confirmed": None, "cuts": 0, "relaxed": False, "loosened": 0,
-            "best": None}
+            "best": None, "simulate_s": 0.0}
 
 
 def _nadir_simulate(case: Case, hz, gain, r_up, r_dn, energy_for=None):
@@ -206,7 +207,9 @@ def _nadir_round(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
                   + (f" (round {nadir['rounds'] + 1})" if nadir["rounds"] else ""))
     gain, r_up, r_dn = period_values(lp, info, out.x)
     sub = _sub_hz(hz, live)
+    t0 = time.perf_counter()
     chk = _nadir_simulate(case, sub, gain, r_up, r_dn)
+    nadir["simulate_s"] += time.perf_counter() - t0
     worst = np.zeros(len(hz.dP))
     worst[live] = chk.dip_hz
     nadir["checked"] = True
