@@ -223,6 +223,10 @@ def _nadir_round(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
             return _nadir_loosen(nadir, hz, live, chk.dip_hz, N_max, (lp, info, out))
         if nadir["best"] is not None:  # loosened too far: the last confirmed answer stands
             return False
+    stuck = nadir.get("last_worst") is not None and abs(nadir["last_worst"] - worst.max()) < 1e-9
+    nadir["last_worst"] = float(worst.max())
+    if bad.any() and cut and not g.relaxed and (nadir["rounds"] >= NADIR_ROUNDS or stuck):
+        return _nadir_restart_relaxed(nadir)  # the cuts did not move the answer
     if not bad.any() or nadir["rounds"] >= NADIR_ROUNDS or not cut:
         return False
     # per violating instance: the candidate's own simulated responses at its nadir time as
@@ -299,8 +303,22 @@ def _nadir_on_infeasible(case: Case, hz, nadir: dict, history: list) -> bool:
         g.relaxed = nadir["relaxed"] = True
         return True
     if g.cuts and history:
+        if not g.relaxed:  # the cuts from the rows' answer led nowhere: start from below
+            return _nadir_restart_relaxed(nadir)
         _nadir_give_up(case, hz, nadir)
     return False
+
+
+def _nadir_restart_relaxed(nadir: dict) -> bool:
+    """Drop the cuts and the rows and search again from the cheapest allocation the other
+    limits allow, guided by the simulation alone (a governor that swings worse with more gain,
+    such as hydro with permanent droop only, is approached from the stable side)."""
+    g = nadir["guide"]
+    g.cuts.clear()
+    g.scale = None
+    g.relaxed = nadir["relaxed"] = True
+    nadir["rounds"] = 0
+    return True
 
 
 def _nadir_final(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
