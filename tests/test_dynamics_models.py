@@ -192,7 +192,7 @@ def test_blocked_direction_gives_no_response(case_dir):
     assert s["response_mw:Lagmoor"].iloc[-1] > 10.0
 
 
-def test_two_area_tie_overshoot_is_twice_the_inertial_share(case_dir):
+def test_two_area_tie_overshoot_is_twice_the_inertial_share(case_dir, capsys):
     """Two areas, no governors, no load damping, no tie damping: a step ΔP in area 1 sends
     ΔP H2/(H1 + H2) over the tie on average, oscillating as (1 − cos ω t), so the peak
     transient flow is twice that (undamped second-order system, textbook), ω² = 2π T f_n/2
@@ -222,6 +222,19 @@ def test_two_area_tie_overshoot_is_twice_the_inertial_share(case_dir):
     assert lk["limit_mw"] == 120.0 and not lk["link_ok"]
     assert not sim.summary["link_ok"].iloc[0]
     assert sim.overloaded_links() and "WE" in sim.overloaded_links()[0]
+    # the command prints a note and writes the per-link table
+    from optreserve import cli
+    alloc_file = case_dir("alloc") / "allocation.csv"
+    alloc_file.parent.mkdir()
+    alloc.to_csv(alloc_file, index=False)
+    out = case_dir("out")
+    assert cli.main(["simulate", str(case.path), "--allocation", str(alloc_file), "--all",
+                     "--out", str(out), "--duration", "5"]) == 0
+    assert "note: event step: link WE reaches" in capsys.readouterr().err
+    links = pd.read_csv(out / "simulation_links.csv", comment="#")
+    assert list(links.columns) == ["event", "link", "limit_mw", "max_flow_mw",
+                                   "max_loading_pct", "at_time_s", "link_ok"]
+    assert not links["link_ok"].iloc[0]
 
 
 def test_reheat_unit_step_matches_second_order_closed_form(case_dir):
