@@ -5,7 +5,10 @@ The case is what `optreserve generate --units 300 --periods 1 --seed 1` writes (
 the allocation found. A second line gives every provider of the case a droop response, so
 that the integrator carries ~300 governor states instead of the few the optimum uses. Each
 timing is the best of --repeat runs of optreserve.simulate.simulate (integration, nadir
-refinement, summary); writing the series and the plot is timed separately.
+refinement, summary); writing the series and the plot is timed separately. --governors mixed
+(default) gives the units the four governor models in turn (lag, reheat T_g 0.2 s T_rh 7 s
+F_hp 0.3, hydro T_g 0.5 s T_w 1.5 s, inverter T_g 0.05 s delay 0.15 s); --governors lag keeps
+the generated case's first-order lags.
 
     python benchmarks/simulate_speed.py                # Markdown table + machine
     python benchmarks/simulate_speed.py --repeat 5 --method Radau
@@ -48,13 +51,27 @@ def every_provider(case, allocation):
     return out
 
 
+def mixed_governors(case):
+    """The four governor models in turn over the units, with typical parameters."""
+    u = case.units.copy()
+    k = np.arange(len(u)) % 4
+    u["governor"] = np.array(["lag", "reheat", "hydro", "inverter"], dtype=object)[k]
+    u["governor_lag_s"] = np.select([k == 1, k == 2, k == 3], [0.2, 0.5, 0.05], np.nan)
+    u["reheat_time_s"] = np.where(k == 1, 7.0, np.nan)
+    u["hp_fraction"] = np.where(k == 1, 0.3, np.nan)
+    u["water_time_s"] = np.where(k == 2, 1.5, np.nan)
+    u["delay_s"] = np.where(k == 3, 0.15, 0.0)
+    return case.replace(units=u)
+
+
 def main() -> int:
     p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawTextHelpFormatter)
     p.add_argument("--units", type=int, default=300)
     p.add_argument("--seed", type=int, default=1)
     p.add_argument("--duration", type=float, default=60.0)
     p.add_argument("--repeat", type=int, default=3)
-    p.add_argument("--method", default="auto", choices=["auto", "LSODA", "Radau", "BDF"])
+    p.add_argument("--method", default="auto", choices=["auto", "exact"])
+    p.add_argument("--governors", default="mixed", choices=["mixed", "lag"])
     args = p.parse_args()
 
     import optreserve
@@ -66,6 +83,8 @@ def main() -> int:
         case_dir = generate(Spec(units=args.units, periods=1, seed=args.seed),
                             Path(tmp) / "case")
         case = optreserve.load_case(case_dir)
+        if args.governors == "mixed":
+            case = mixed_governors(case)
         t0 = time.perf_counter()
         result = optreserve.solve(case, engine="highspy")
         t_solve = time.perf_counter() - t0
@@ -91,7 +110,8 @@ def main() -> int:
           f"scipy {__import__('scipy').__version__}")
     print(f"case: optreserve generate --units {args.units} --periods 1 --seed {args.seed} "
           f"(solved in {t_solve:.1f} s); event {event} ({rows[0][4]['size_mw']:+.0f} MW); "
-          f"{args.duration:g} s simulated with {args.method}, best of {args.repeat}\n")
+          f"{args.duration:g} s simulated with {args.method}, {args.governors} governors, best of "
+          f"{args.repeat}\n")
     print("| allocation | responding units | simulate s | write series + plot s | nadir Hz "
           "| settled Hz | flat at end |")
     print("|---|---|---|---|---|---|---|")

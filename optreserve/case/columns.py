@@ -163,6 +163,9 @@ LINK_COLS: list[Col] = [
         meaning="post-event flow limit"),
     Col("flow_mw", "float", False, 0.0, **_MW, unit="MW", per_period=True,
         meaning="pre-event flow, positive from from_area to to_area"),
+    # version 2: what `simulate` checks the swing's tie loading against (governor_columns.py)
+    Col("transient_limit_mw", "float", False, NAN, lo=MW_MIN, hi=MW_MAX, unit="MW",
+        per_period=False, meaning="flow the link may carry during the swing", version=2),
 ]
 EVENT_COLS: list[Col] = [
     Col("event", "id", True, meaning="unique id"),

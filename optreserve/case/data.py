@@ -73,6 +73,7 @@ class Case:
     @property
     def is_nodal(self) -> bool:
         return self.nodal is not None
+    response_limit: str = "headroom"  # [dynamics]: "headroom" or "room" (governor_columns.py)
 
     # --- horizon ---
     @property

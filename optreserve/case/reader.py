@@ -47,6 +47,7 @@ from optreserve.case.columns import (
     series_hints,
 )
 from optreserve.case.csvio import FALSE_WORDS, TRUE_WORDS, _read_csv, _Table, _typed_table
+from optreserve.case.governor_columns import apply_governor_columns
 from optreserve.case.data import Case, DroopSettings, Limits, SolverSettings
 from optreserve.case.products import check_products
 from optreserve.case.problems import MAX_PROBLEMS, _Collector
@@ -266,6 +267,7 @@ def load_case(path: str | Path) -> Case:
     check_trip_signs(case, events["_line"].to_numpy(), lab("events.csv"), col)
     check_nadir_inertia(case, col)
     col.raise_if_any()
+    case = apply_governor_columns(case, folder)  # governor models: case/governor_columns.py
     return case.replace(read_time_s=time.perf_counter() - t0)
 
 

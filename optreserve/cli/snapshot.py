@@ -137,6 +137,12 @@ def cmd_solve(args) -> int:
             print(clean("\n".join(comparison.lines())))
         if report is not None:
             print(f"wrote {report}")
+    if result.status == "nadir_unconfirmed":  # exit 6: the allocation is not confirmed
+        from optreserve.cli.common import EXIT_NADIR_UNCONFIRMED
+        print(f"warning: nadir not confirmed: the allocation's worst simulated dip is "
+              f"{result.nadir_check['worst_hz']:.3f} Hz against the limit of "
+              f"{case.limits.max_nadir_deviation_hz:g} Hz", file=sys.stderr)
+        return EXIT_NADIR_UNCONFIRMED
     return EXIT_OK
 
 

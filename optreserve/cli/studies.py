@@ -150,6 +150,8 @@ def cmd_simulate(args) -> int:
           + f": {plural(len(sm), 'event')} simulated")
     print(_table(["event", "size MW", "nadir Hz", "at s", "RoCoF Hz/s", "dP fn/2H",
                   "settles Hz", "settled", "nadir", "RoCoF"], rows, set(range(1, 7))))
+    for note in sim.overloaded_links():  # transient tie loading (simulation_links.csv)
+        print(f"note: {note}", file=sys.stderr)
     broken = int(sm[["settled_ok", "nadir_ok", "rocof_ok"]].eq(False).any(axis=1).sum())
     if broken:
         verb = "breaks" if broken == 1 else "break"

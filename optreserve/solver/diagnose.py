@@ -38,9 +38,13 @@ MAX_LINES = 20
 MAX_ALONE = 8
 
 
-def diagnose(case: Case, hz: Horizon | None = None, extend=None) -> InfeasibleError:
+def diagnose(case: Case, hz: Horizon | None = None, extend=None,
+             nadir_guide=None) -> InfeasibleError:
     """The smallest explanation of why no allocation meets the limits (InfeasibleError with
-    lines and a diagnosis table of verify.breaks.COLUMNS)."""
+    lines and a diagnosis table of verify.breaks.COLUMNS). nadir_guide: the nadir rows as the
+    solve had them (model/nadir.py NadirGuide); when the solve had left them free (relaxed:
+    the simulation decides the nadir), so does the diagnosis, and no nadir shortfall of the
+    conservative rows is blamed."""
     hz = prepare(case) if hz is None else hz
     F = screening_limit_hz(case)
     cap = most_capable(case, hz)
@@ -50,15 +54,17 @@ def diagnose(case: Case, hz: Horizon | None = None, extend=None) -> InfeasibleEr
         lines = [s + " (even with every provider at its highest gain)"
                  for s in describe(short, F)]
         return _error(case, lines, short)
-    elastic = _elastic(case, hz, extend)
+    elastic = _elastic(case, hz, extend, nadir_guide)
     if elastic is None:
         return InfeasibleError("no allocation can meet the limits (diagnosis failed: the "
                                "least-violating allocation could not be found)")
     gain, r_up, r_dn = elastic
+    rows_free = nadir_guide is not None and getattr(nadir_guide, "relaxed", False)
     nadir = (nadir_shortfall(case, hz, r_up, r_dn)
-             if case.limits.max_nadir_deviation_hz is not None else None)
+             if case.limits.max_nadir_deviation_hz is not None and not rows_free else None)
     broken = what_breaks(case, hz, gain, r_up, r_dn, F, nadir)
-    links = _limiting_links(case, hz, extend, evaluate(case, hz, gain, r_up, r_dn))
+    links = _limiting_links(case, hz, extend, evaluate(case, hz, gain, r_up, r_dn),
+                            nadir_guide)
     if links is not None:  # step 2
         return _error(case, links[1], links[0])
     # step 3: every event can be met alone (step 1), so none is blamed on its own
@@ -82,19 +88,19 @@ def _error(case: Case, lines: list[str], table: pd.DataFrame) -> InfeasibleError
     return InfeasibleError("no allocation can meet the limits", lines, diag)
 
 
-def _elastic(case: Case, hz: Horizon, extend):
+def _elastic(case: Case, hz: Horizon, extend, nadir_guide=None):
     """Gains and headroom (T, N) of the least-violating allocation (penalised slacks on every
     limit family), or None when HiGHS finds none."""
-    lp, info = build_model(case, elastic=True, hz=hz)
+    lp, info = build_model(case, elastic=True, hz=hz, nadir_scale=nadir_guide)
     if extend is not None:
         extend(lp, info)
     out = solve_program(lp, engine="highspy")
     return None if out.x is None else period_values(lp, info, out.x)
 
 
-def _feasible(case: Case, hz: Horizon, extend):
+def _feasible(case: Case, hz: Horizon, extend, nadir_guide=None):
     """An allocation (gain, r_up, r_dn) meeting every row of the model for hz, or None."""
-    lp, info = build_model(case, hz=hz)
+    lp, info = build_model(case, hz=hz, nadir_scale=nadir_guide)
     if extend is not None:
         extend(lp, info)
     lp.zero_costs()
@@ -112,7 +118,7 @@ def _with_limits(hz: Horizon, links, limit_mw) -> Horizon:
     return replace(hz, Fmax=Fmax)
 
 
-def _limiting_links(case: Case, hz: Horizon, extend, pts):
+def _limiting_links(case: Case, hz: Horizon, extend, pts, nadir_guide=None):
     """Links whose limit alone makes the case infeasible, with a limit that makes it feasible:
     (rows of verify.breaks.COLUMNS with over_mw = the raise needed, one line each), or None
     when relaxing the links does not make the case feasible."""
@@ -123,20 +129,28 @@ def _limiting_links(case: Case, hz: Horizon, extend, pts):
     cand = np.nonzero(near.any(axis=0))[0]
     cand = cand[np.argsort(-loading.max(axis=0)[cand], kind="stable")]  # most loaded first
     if not len(cand):
-        return None
+        # the least-violating allocation may have traded a link for a settled slack (the
+        # slacks' weights decide): then every link is a candidate
+        cand = np.arange(hz.F0.shape[1])
     # a limit no flow can reach: |F0| + 2 |dP| bounds every post-event flow (shares sum to 1)
     free = float(np.abs(hz.F0).max() + 2 * hz.dP.max() + 1.0)
-    if _feasible(case, _with_limits(hz, cand, free), extend) is None:
+    freed = _feasible(case, _with_limits(hz, cand, free), extend, nadir_guide)
+    if freed is None:
         return None
+    # the candidates the allocation freed of their limits really loads past them, most first
+    over = (np.abs(evaluate(case, hz, *freed).flow_after_mw) - hz.Fmax[hz.inst_t])[:, cand]
+    if (over > 1e-6).any():
+        keep = (over > 1e-6).any(axis=0)
+        cand = cand[keep][np.argsort(-over.max(axis=0)[keep], kind="stable")]
     link_ids = [str(x) for x in case.links["link"]]
     labels = [str(p) for p in case.periods] if case.is_horizon else [""] * hz.T
     rows = []
     alone = [li for li in cand[:MAX_ALONE]
-             if _feasible(case, _with_limits(hz, [li], free), extend) is not None]
+             if _feasible(case, _with_limits(hz, [li], free), extend, nadir_guide) is not None]
     for li in alone or list(cand):
         group = [li] if alone else list(cand)
         lim = float(hz.Fmax[:, li].max())
-        need = _smallest_limit(case, hz, extend, group, li, lim, free)
+        need = _smallest_limit(case, hz, extend, group, li, lim, free, nadir_guide)
         worst = int(np.argmax(np.abs(pts.flow_after_mw[:, li])))
         rows.append({"family": "link", "element": link_ids[li], "event": hz.inst_name[worst],
                      "period": labels[hz.inst_t[worst]], "short_mw": 0.0, "excess_hz": 0.0,
@@ -148,7 +162,7 @@ def _limiting_links(case: Case, hz: Horizon, extend, pts):
     return pd.DataFrame(rows, columns=COLUMNS), texts
 
 
-def _smallest_limit(case, hz, extend, group, li, lim, free) -> float:
+def _smallest_limit(case, hz, extend, group, li, lim, free, nadir_guide=None) -> float:
     """The lowest limit of link li (the others in the group relaxed) found feasible by
     bisection, rounded up to 0.1 MW, read from the independent flows of the allocation."""
     lo, hi = lim, free
@@ -157,7 +171,7 @@ def _smallest_limit(case, hz, extend, group, li, lim, free) -> float:
         mid = 0.5 * (lo + hi) if best is not None else hi
         others = [g for g in group if g != li]
         trial = _with_limits(_with_limits(hz, others, free) if others else hz, [li], mid)
-        alloc = _feasible(case, trial, extend)
+        alloc = _feasible(case, trial, extend, nadir_guide)
         if alloc is None:
             lo = mid
             continue

@@ -32,7 +32,7 @@ from optreserve.model.nodal_flows import NodalFlowRows
 from optreserve.solver.backends import solve_program
 from optreserve.solver.prices import _attach_prices
 from optreserve.solver.readback import AGREE_MW, _make_result, exact_points
-from optreserve.solver.run import _nadir_round
+from optreserve.solver.run import _nadir_round, _nadir_state
 from optreserve.verify.nodal import interchange, monitored, nodal_flows_after
 
 # Rows are added for flows above (1 - ROWGEN_MARGIN) of their limit: the nearly binding
@@ -70,14 +70,14 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
     x_hat = None
     prev = None
     last_new: list = []  # (instance, element) of the flow rows the last pass added
-    nadir = {"scale": None, "rounds": 0, "checked": False, "worst_hz": None}
+    nadir = _nadir_state(case)
     passes = 0
     while True:
         passes += 1
         t0 = time.perf_counter()
         progress.step(f"building the model (flow-row pass {passes})")
         lp, info = build_model(area_case, x_hat=x_hat, relax=relax, hz=hz,
-                               nadir_scale=nadir["scale"])
+                               nadir_scale=nadir["guide"])
         m, k, d = np.nonzero(active)
         rows.add(lp, info, lp.var_blocks["K"], (m, k, np.where(d == 0, 1.0, -1.0)))
         info.nodal_rows = rows  # for the event prices (solver/prices.py)
@@ -156,7 +156,10 @@ def solve_nodal(case: Case, engine: str = "auto", time_limit: float | None = Non
         case, hz, flows, result.events["event"].to_numpy(object))
     result.solver_warnings = [w for w in out.warnings if "small costs" not in w]
     result.iterations = passes
-    result.nadir_check = {k: nadir[k] for k in ("checked", "rounds", "worst_hz")}
+    result.nadir_check = {k: nadir[k] for k in ("checked", "rounds", "worst_hz", "confirmed",
+                                                 "cuts", "relaxed", "loosened")}
+    if nadir["confirmed"] is False:  # the last candidate simulated dips past the limit
+        result.status = "nadir_unconfirmed"
     result.verification["flow_row_passes"] = passes
     result.verification["flow_rows"] = int(active.sum())
     t_price = _attach_prices(result, lp, info, out)

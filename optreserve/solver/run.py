@@ -4,7 +4,6 @@ independently, read prices, and return a Result of pandas tables."""
 from __future__ import annotations
 
 import time
-from dataclasses import replace
 from typing import Callable
 
 import numpy as np
@@ -66,14 +65,14 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     history = []
     retried = False
     timed_out = False  # stopped by the time budget before the passes converged
-    nadir = {"scale": None, "rounds": 0, "checked": False, "worst_hz": None}
+    nadir = _nadir_state(case)
     while True:
         iterations += 1
         t0 = time.perf_counter()
         progress.step("building the model" + (f" (dead-band pass {iterations})"
                                                if iterations > 1 else ""))
         lp, info = build_model(case, x_hat=x_hat, relax=relax, hz=hz,
-                               nadir_scale=nadir["scale"])
+                               nadir_scale=nadir["guide"])
         if extend is not None:
             extend(lp, info)
         t_build += time.perf_counter() - t0
@@ -93,7 +92,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
                 # the first guess (every event at the limit) can misjudge dead-band flows:
                 # take the settled points of the least-violating allocation and try again
                 retried = True
-                e_lp, e_info = build_model(case, elastic=True, hz=hz)
+                e_lp, e_info = build_model(case, elastic=True, hz=hz, nadir_scale=nadir["guide"])
                 if extend is not None:
                     extend(e_lp, e_info)
                 e_out = solve_program(e_lp, engine="highspy")
@@ -103,8 +102,12 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
                                      info.x_hat)
                     iterations = 0
                     continue
+            if _nadir_on_infeasible(case, hz, nadir, history):
+                iterations = 0  # the nadir rows alone were infeasible: the simulation decides
+                retried, x_hat = False, None  # and the dead-band guess starts again with them
+                continue
             if not history:
-                raise diagnose(case, hz, extend)
+                raise diagnose(case, hz, extend, nadir["guide"])
             # the dead-band guess moved into an infeasible corner: keep the last good answer
             lp, info, out = history[-1]
             points = None
@@ -140,9 +143,15 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         x_hat = np.where(live & np.isfinite(exact), exact, info.x_hat)
         points = None
 
+    with clock("nadir_final"):  # the answer returned is one the simulation has checked
+        lp, info, out, swapped = _nadir_final(case, info, lp, out, nadir)
+    points = None if swapped else points
     with clock("verify"):
         result = _make_result(case, lp, info, out, relax, points, check_model=not timed_out)
-    result.nadir_check = {k: nadir[k] for k in ("checked", "rounds", "worst_hz")}
+    result.nadir_check = {k: nadir[k] for k in ("checked", "rounds", "worst_hz", "confirmed",
+                                                 "cuts", "relaxed", "loosened")}
+    if nadir["confirmed"] is False:
+        result.status = "nadir_unconfirmed"
     # our own tie-break price on headroom (model.TIE_BREAK_PER_MW_H) makes HiGHS remark on
     # "excessively small costs": that one is expected and not passed on
     result.solver_warnings = list(dict.fromkeys(
@@ -162,65 +171,228 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     return result
 
 
-# The nadir rows rest on an aggregate (centre-of-inertia) swing equation; an area's own
-# frequency can dip further. For up to this many event instances the allocation is simulated
-# (simulate.py) and the rows of any event whose simulated nadir passes the limit are tightened
-# in proportion, then the case is solved again (at most NADIR_ROUNDS times).
-NADIR_SIM_MAX_INSTANCES = 200
+# The nadir rows are a conservative filter on the centre of inertia; the simulation decides.
+# Every event instance (up to NADIR_SIM_MAX_INSTANCES) of a candidate is simulated
+# (dynamics/check.py); where an area dips past the limit, a cut from that simulation is added
+# (model/nadir.py NadirGuide) and the case solved again, at most NADIR_ROUNDS times. A solve
+# exits 0 only with every instance confirmed; otherwise status "nadir_unconfirmed" (exit 6),
+# or InfeasibleError (exit 3) when every provider at its most still fails in simulation.
+NADIR_SIM_MAX_INSTANCES = 2000
 
 
-NADIR_ROUNDS = 6
+NADIR_ROUNDS = 8
 
 
+# cuts aim this far inside the limit, so that a candidate does not stop a hair outside
 NADIR_MARGIN = 0.995
+NADIR_TOL_HZ = 1e-5
+# The rows are conservative: a confirmed allocation whose dips stay well inside the limit is
+# re-solved with each instance's rows loosened by N / dip (at most this many times), and the
+# cheapest confirmed allocation is kept.
+NADIR_LOOSEN = 3
+
+
+def _nadir_state(case: Case) -> dict:
+    from optreserve.model.nadir import NadirGuide
+
+    return {"scale": None, "guide": NadirGuide(), "rounds": 0, "checked": False,
+            "worst_hz": None, "confirmed": None, "cuts": 0, "relaxed": False, "loosened": 0,
+            "best": None, "simulate_s": 0.0}
+
+
+def _nadir_simulate(case: Case, hz, gain, r_up, r_dn, energy_for=None):
+    from optreserve.dynamics.check import check_instances
+
+    return check_instances(case, hz.inst_t, hz.sigma * hz.dP, hz.inst_area, hz.trip,
+                           hz.absent, gain, r_up, r_dn, energy_for, getattr(hz, "also_lost", None))
+
+
+def _also_lost(hz, idx) -> list[tuple] | None:
+    """Per instance of idx the units lost besides hz.trip (the rest of a common-mode trip)."""
+    if hz.lost is None:
+        return None
+    lm, lj = lost_pairs(hz, idx)
+    pos = {int(m): k for k, m in enumerate(idx)}
+    out: list[list] = [[] for _ in idx]
+    for m, j in zip(lm.tolist(), lj.tolist()):
+        if j != hz.trip[m]:
+            out[pos[m]].append(j)
+    return [tuple(x) for x in out]
+
+
+def _nadir_live(case: Case, hz) -> np.ndarray:
+    return np.nonzero((hz.dP > 0) & (hz.H_sys > 0))[0]
 
 
 def _nadir_round(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
-                 nadir: dict) -> bool:
-    """Simulate the events against the nadir limit; tighten and ask for another solve when
-    one breaks it. Returns True when the case must be solved again."""
+                 nadir: dict, cut: bool = True) -> bool:
+    """Simulate every event instance of the candidate against the nadir limit; where one
+    dips past it, add a cut and ask for another solve. Returns True when the case must be
+    solved again. Sets nadir["confirmed"] (True: every instance within the limit)."""
     N_max = case.limits.max_nadir_deviation_hz
     hz = info.hz
-    live = np.nonzero((hz.dP > 0) & (hz.H_sys > 0))[0]
-    if N_max is None or len(live) == 0 or len(hz.dP) > NADIR_SIM_MAX_INSTANCES:
+    live = _nadir_live(case, hz)
+    if N_max is None or len(live) == 0:
         return False
-    from optreserve.dynamics.simulate import build_system, simulate_event
-
-    progress.step("simulating events against the nadir limit")
+    if len(hz.dP) > NADIR_SIM_MAX_INSTANCES:
+        nadir["confirmed"] = False
+        return False
+    progress.step("simulating events against the nadir limit"
+                  + (f" (round {nadir['rounds'] + 1})" if nadir["rounds"] else ""))
     gain, r_up, r_dn = period_values(lp, info, out.x)
+    sub = _sub_hz(hz, live)
+    t0 = time.perf_counter()
+    chk = _nadir_simulate(case, sub, gain, r_up, r_dn)
+    nadir["simulate_s"] += time.perf_counter() - t0
     worst = np.zeros(len(hz.dP))
-    systems = {}
-    lm, lj = lost_pairs(hz)
-    for m in live:
-        t = int(hz.inst_t[m])
-        g = gain[t].copy()
-        if hz.absent[m] >= 0:
-            g[hz.absent[m]] = 0.0
-        # a common-mode trip: the simulator takes one tripped unit; the others lose their
-        # response and stored energy here
-        extra = lj[(lm == m) & (lj != hz.trip[m])]
-        g[extra] = 0.0
-        key = (t, int(hz.absent[m]), tuple(extra))
-        if key not in systems:
-            sysm = build_system(case, g, r_up[t], r_dn[t], t=t)
-            if len(extra):
-                H = sysm.stored_energy_mw_s.copy()
-                H[extra] = 0.0
-                sysm = replace(sysm, stored_energy_mw_s=H)
-            systems[key] = sysm
-        tr = simulate_event(systems[key], float(hz.sigma[m] * hz.dP[m]), int(hz.inst_area[m]),
-                            trip=int(hz.trip[m]), duration_s=30.0)
-        worst[m] = abs(tr.nadir_hz - case.nominal_frequency_hz)
+    worst[live] = chk.dip_hz
     nadir["checked"] = True
     nadir["worst_hz"] = float(worst.max())
-    bad = worst > N_max * (1 + 1e-4)
-    if not bad.any() or nadir["rounds"] >= NADIR_ROUNDS:
+    bad = chk.dip_hz > N_max + NADIR_TOL_HZ
+    nadir["confirmed"] = not bad.any()
+    nadir["out"] = out
+    g = nadir["guide"]
+    if cut and not g.cuts and not g.relaxed:
+        if not bad.any():
+            return _nadir_loosen(nadir, hz, live, chk.dip_hz, N_max, (lp, info, out))
+        if nadir["best"] is not None:  # loosened too far: the last confirmed answer stands
+            return False
+    stuck = nadir.get("last_worst") is not None and abs(nadir["last_worst"] - worst.max()) < 1e-9
+    nadir["last_worst"] = float(worst.max())
+    if bad.any() and cut and not g.relaxed and (nadir["rounds"] >= NADIR_ROUNDS or stuck):
+        return _nadir_restart_relaxed(nadir)  # the cuts did not move the answer
+    if not bad.any() or nadir["rounds"] >= NADIR_ROUNDS or not cut:
         return False
-    scale = np.ones(len(hz.dP)) if nadir["scale"] is None else nadir["scale"].copy()
-    scale[bad] *= N_max / worst[bad] * NADIR_MARGIN
-    nadir["scale"] = scale
+    # per violating instance: the candidate's own simulated responses at its nadir time as
+    # coefficients, and the energy that would have kept the dip at the limit
+    again = _nadir_simulate(case, sub, gain, r_up, r_dn, energy_for=bad)
+    # what each provider's demand could reach by the limit: min(r, K (N - d)^+) (the model's
+    # q_a + q_b cannot exceed it; in a relaxed model q itself is not yet meaningful)
+    r_dir = np.where((hz.sigma > 0)[:, None], r_up[hz.inst_t], r_dn[hz.inst_t])
+    q = np.minimum(r_dir, gain[hz.inst_t] * np.maximum(N_max - hz.d_hz, 0.0)[None, :])
+    f_n = case.nominal_frequency_hz
+    from optreserve.model.nadir import fresh_coef
+
+    for j in np.nonzero(bad)[0]:
+        m = int(live[j])
+        t_star = float(chk.time_s[j])
+        E = again.energy_mw_s[j]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            c = np.where(q[m] > 1e-6, E / q[m], 0.0)
+        # units the candidate did not use: credited as the rows would at that time
+        new = q[m] <= 1e-6
+        c[new] = fresh_coef(case, hz, m, t_star)[new]
+        c = np.maximum(c, 0.0)
+        short = 2.0 * hz.H_sys[m] / f_n * (chk.dip_hz[j] - NADIR_MARGIN * N_max)
+        nadir["guide"].cuts.append((m, c, float(E.sum() + max(short, 0.0))))
+    nadir["cuts"] = len(nadir["guide"].cuts)
     nadir["rounds"] += 1
     return True
+
+
+def _sub_hz(hz, idx):
+    """The instance arrays of hz restricted to idx (what check_instances reads)."""
+    from types import SimpleNamespace
+
+    return SimpleNamespace(inst_t=hz.inst_t[idx], sigma=hz.sigma[idx], dP=hz.dP[idx],
+                           inst_area=hz.inst_area[idx], trip=hz.trip[idx],
+                           absent=hz.absent[idx], also_lost=_also_lost(hz, idx))
+
+
+def _nadir_at_most(case: Case, hz) -> tuple[float, int]:
+    """The worst simulated dip (Hz) and its instance with every available provider at its
+    most: the highest gain its band and headroom allow, and all the headroom it may hold."""
+    live = _nadir_live(case, hz)
+    gain = hz.K_hi_b[hz.block] * hz.avail
+    chk = _nadir_simulate(case, _sub_hz(hz, live), gain, hz.R_up * hz.avail,
+                          hz.R_dn * hz.avail)
+    j = int(np.argmax(chk.dip_hz))
+    return float(chk.dip_hz[j]), int(live[j])
+
+
+def _nadir_loosen(nadir: dict, hz, live, dip, N_max: float, candidate) -> bool:
+    """A confirmed candidate: keep it if it is the cheapest so far, and ask for a solve with
+    each instance's rows loosened by N / dip while dips stay well inside the limit."""
+    best = nadir["best"]
+    if best is None or candidate[2].objective < best[2].objective:
+        nadir["best"] = (*candidate, float(dip.max()))
+    if nadir["loosened"] >= NADIR_LOOSEN or dip.max() >= NADIR_MARGIN * N_max:
+        return False
+    g = nadir["guide"]
+    sc = np.ones(len(hz.dP)) if g.scale is None else g.scale.copy()
+    sc[live] *= NADIR_MARGIN * N_max / np.maximum(dip, 1e-6)
+    g.scale = sc
+    nadir["loosened"] += 1
+    return True
+
+
+def _nadir_on_infeasible(case: Case, hz, nadir: dict, history: list) -> bool:
+    """A solve came back infeasible. The nadir rows alone are conservative: when they make the
+    first solve infeasible, solve again with them relaxed (True), the simulation and its cuts
+    then decide. When the cuts did it, give up (_nadir_give_up)."""
+    if case.limits.max_nadir_deviation_hz is None:
+        return False
+    g = nadir["guide"]
+    if not history and not g.relaxed and not g.cuts:
+        g.relaxed = nadir["relaxed"] = True
+        return True
+    if g.cuts and history:
+        if not g.relaxed:  # the cuts from the rows' answer led nowhere: start from below
+            return _nadir_restart_relaxed(nadir)
+        _nadir_give_up(case, hz, nadir)
+    return False
+
+
+def _nadir_restart_relaxed(nadir: dict) -> bool:
+    """Drop the cuts and the rows and search again from the cheapest allocation the other
+    limits allow, guided by the simulation alone (a governor that swings worse with more gain,
+    such as hydro with permanent droop only, is approached from the stable side)."""
+    g = nadir["guide"]
+    g.cuts.clear()
+    g.scale = None
+    g.relaxed = nadir["relaxed"] = True
+    nadir["rounds"] = 0
+    return True
+
+
+def _nadir_final(case: Case, info: ModelInfo, lp: LinearProgram, out: Outcome,
+                 nadir: dict):
+    """The answer to return: the cheapest confirmed one when the loosened rows found any,
+    else the last; it must be the one simulated: check it when it was not, and give up
+    (InfeasibleError or unconfirmed) when it breaks the limit. Returns (lp, info, out,
+    swapped)."""
+    if case.limits.max_nadir_deviation_hz is None or len(_nadir_live(case, info.hz)) == 0:
+        return lp, info, out, False
+    best = nadir["best"]
+    if best is not None and (nadir.get("out") is not out or not nadir["confirmed"]
+                             or best[2].objective < out.objective):
+        swapped = best[2] is not out
+        lp, info, out = best[:3]
+        nadir.update(out=out, confirmed=True, worst_hz=best[3])
+        return lp, info, out, swapped
+    if nadir.get("out") is not out:
+        _nadir_round(case, info, lp, out, nadir, cut=False)
+    if nadir["confirmed"] is False and len(info.hz.dP) <= NADIR_SIM_MAX_INSTANCES:
+        _nadir_give_up(case, info.hz, nadir)
+    return lp, info, out, False
+
+
+def _nadir_give_up(case: Case, hz, nadir: dict) -> None:
+    """No candidate could be confirmed: raise InfeasibleError when every provider at its most
+    still breaks the limit in simulation; otherwise mark the result unconfirmed."""
+    from optreserve.errors import InfeasibleError
+
+    dip, m = _nadir_at_most(case, hz)
+    N_max = case.limits.max_nadir_deviation_hz
+    if dip > N_max + NADIR_TOL_HZ:
+        name = hz.inst_name[m]
+        msg = (f"nadir limit {N_max:g} Hz cannot be met: with every provider at its most "
+               f"(highest gain, all its headroom) event {name} still dips {dip:.3f} Hz in "
+               "simulation")
+        line = (f"event {name}: simulated nadir {dip:.3f} Hz with every provider at its most "
+                f"(limit {N_max:g} Hz)")
+        raise InfeasibleError(msg, [line])
+    nadir["confirmed"] = False
 
 
 def _needs_fixed_point(info: ModelInfo) -> bool:
