@@ -7,6 +7,8 @@ import sys
 from optreserve.progress import use_colour
 
 EXIT_OK, EXIT_OTHER, EXIT_INPUT, EXIT_INFEASIBLE = 0, 1, 2, 3
+EXIT_INCOMPLETE = 4  # sweep/batch: a point could not be delivered (a "lost" row)
+EXIT_SIGINT, EXIT_SIGTERM = 130, 143  # 128 + signal number; nothing written
 
 
 def _table(headers: list[str], rows: list[list[str]], right: set[int] | None = None) -> str:

@@ -451,7 +451,10 @@ def _styled(name: str):
         def inner(*args, **kwargs):
             import matplotlib
 
-            with matplotlib.rc_context({**_RC, "svg.hashsalt": f"optreserve-{name}"}):
+            from optreserve.output.plotstyle import LITERAL_TEXT  # ids shown as written
+
+            with matplotlib.rc_context({**_RC, **LITERAL_TEXT,
+                                        "svg.hashsalt": f"optreserve-{name}"}):
                 return fn(*args, **kwargs)
         return inner
     return wrap
