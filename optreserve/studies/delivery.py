@@ -3,8 +3,8 @@
 * A worker that dies (killed, out of memory) takes nothing with it: the scheduler runs its
   tasks elsewhere (and `retries`), and a point whose task is lost or cancelled anyway (every
   worker died and the shared case went with them) is submitted again, the case scattered anew.
-* A point not back within `point_timeout_s` of its worker starting on it (a stopped or hung
-  worker) is taken away and run on another worker; a hung worker of our own LocalCluster is
+* A point not back within `point_timeout_s` of its worker starting on it (WARMUP_S more for
+  a worker's first point) is taken away and run on another worker (a stopped or hung worker); a hung worker of our own LocalCluster is
   killed (its nanny starts a fresh one).
 * A point still not delivered after DELIVERY_ATTEMPTS tries becomes a row saying so (status
   "lost"; the command exits with code 4) instead of silently vanishing.
@@ -19,13 +19,20 @@ import logging
 import os
 import signal
 import time
+from collections import deque
 from collections.abc import Callable
 
 DELIVERY_ATTEMPTS = 3
 POLL_S = 0.25  # how often the client looks for finished and for hung points
+FETCH_S = 10.0  # longest wait for a finished point's row from its worker
+WARMUP_S = 20.0  # extra time for the first point of a worker (imports, first solve)
+STALL_S = 120.0  # points waiting this long with no worker running any of them are lost
 DASK_CONFIG = {
     "distributed.scheduler.http.routes": [],  # no web server content unless asked
     "distributed.worker.http.routes": [],
+    # one point at a time per single-thread worker: a point "processing" on a worker is the
+    # one it runs, so the per-point timeout starts when the point does
+    "distributed.scheduler.worker-saturation": 1.0,
 }
 
 
@@ -71,22 +78,31 @@ class _Delivery:
         self.rows: list[dict] = []
         self.busy_since: dict[str, float] = {}  # worker -> when it began its current point
         self.data = None
+        self.backlog: deque = deque()  # (index, args, attempt, workers to avoid) to submit
+        self.slots = 1
+        self.delivered_by: set[str] = set()
+        self.stalled_since = time.monotonic()  # last time a worker was running one of ours
 
     def run(self, tasks) -> list[dict]:
         from dask.distributed import wait
 
         self._scatter()
-        for i, args in tasks:
-            self._submit(i, args, 1)
-        while self.pending:
+        # as many points in flight as there are worker threads: a point "processing" on a
+        # worker is then the one it runs, and the per-point timeout starts with it
+        self.slots = max(1, sum(w.get("nthreads", 1) for w in
+                                self.client.scheduler_info(n_workers=-1)["workers"].values()))
+        self.backlog.extend((i, args, 1, ()) for i, args in tasks)
+        self._fill()
+        while self.pending or self.backlog:
+            self._fill()
             try:
-                done, _ = wait(list(self.pending), timeout=POLL_S,
-                               return_when="FIRST_COMPLETED")
-            except TimeoutError:  # nothing finished meanwhile
-                done = ()
-            for f in done:
-                if f in self.pending:
-                    self._collect(f)
+                wait(list(self.pending), timeout=POLL_S, return_when="FIRST_COMPLETED")
+            except KeyboardInterrupt:
+                raise
+            except BaseException:  # nothing finished meanwhile, or futures were cancelled
+                pass
+            for f in [f for f in self.pending if f.status != "pending"]:
+                self._collect(f)
             if self.timeout and self.pending:
                 self._take_from_hung_workers()
         return self.rows
@@ -98,12 +114,21 @@ class _Delivery:
             self.data = self.client.scatter(self.shared, broadcast=True)
 
     def _submit(self, i, args, attempt, avoid=()) -> None:
+        """Queue a point; it is handed to Dask when a slot is free (_fill)."""
+        self.backlog.appendleft((i, args, attempt, tuple(avoid)))
+
+    def _fill(self) -> None:
+        while self.backlog and len(self.pending) < self.slots:
+            self._hand_over(*self.backlog.popleft())
+
+    def _hand_over(self, i, args, attempt, avoid=()) -> None:
         kw = {}
-        if avoid:
+        if avoid and self.cluster is None:  # someone else's cluster: prefer the other workers
+            # (only a preference: a strict one would wait forever once those workers go)
             others = [w for w in self.client.scheduler_info(n_workers=-1)["workers"]
                       if w not in avoid]
             if others:
-                kw = {"workers": others, "allow_other_workers": False}
+                kw = {"workers": others, "allow_other_workers": True}
         f = self.client.submit(_on_worker, self.fn, self.data, i, *args, pure=False,
                                retries=1, **kw)
         self.pending[f] = (i, args, attempt)
@@ -130,14 +155,22 @@ class _Delivery:
     def _collect(self, f) -> None:
         i, args, attempt = self.pending.pop(f)
         if f.status == "finished":
-            try:
-                row = f.result()
+            try:  # a row is small: fetching it takes milliseconds unless its worker hangs
+                row = f.result(timeout=min(self.timeout or FETCH_S, FETCH_S))
+            except TimeoutError:
+                holders = {w for ws in self.client.who_has(f).values() for w in ws}
+                self._again(i, args, attempt, "its result could not be fetched from worker "
+                            + ", ".join(sorted(holders)), avoid=holders)
+                for w in holders:
+                    self._stop_worker(w)
+                return
             except Exception as exc:  # the result could not be fetched (worker gone)
                 self._again(i, args, attempt, _why(exc))
                 return
             w = row.pop("_worker", None)
             if w is not None:
                 self.busy_since[w] = time.monotonic()  # free for its next point
+                self.delivered_by.add(w)
             self.rows.append(row)
             self.bar.update(1)
             return
@@ -153,36 +186,51 @@ class _Delivery:
     def _take_from_hung_workers(self) -> None:
         now = time.monotonic()
         mine = {f.key: f for f in self.pending}
-        for w, keys in self.client.processing().items():
+        running = self.client.processing()
+        if any(k in mine for keys in running.values() for k in keys):
+            self.stalled_since = now
+        elif now - self.stalled_since > max(self.timeout, STALL_S):
+            # points wait but no worker runs any (every worker gone and none back)
+            waited = [self.pending.pop(f)[:2] for f in list(self.pending)]
+            waited += [(i, args) for i, args, _, _ in self.backlog]
+            self.backlog.clear()
+            for i, args in waited:
+                self.rows.append(self.lost_row(i, args, "could not be delivered: no worker "
+                                               f"ran it for {max(self.timeout, STALL_S):g} s"))
+                self.bar.update(1)
+            self.client.cancel(list(mine.values()))
+            return
+        for w, keys in running.items():
             ours = [mine[k] for k in keys if k in mine]
             if not ours:
                 self.busy_since[w] = now
                 continue
-            if now - self.busy_since.setdefault(w, now) <= self.timeout:
+            # a fresh worker's first point also pays for its imports: WARMUP_S more
+            allowed = self.timeout + (0.0 if w in self.delivered_by else WARMUP_S)
+            if now - self.busy_since.setdefault(w, now) <= allowed:
                 continue
             self.busy_since.pop(w, None)
             self.client.cancel(ours)
-            for f in ours:
+            for k, f in enumerate(ours):
                 i, args, attempt = self.pending.pop(f)
-                self._again(i, args, attempt, f"no result within {self.timeout:g} s on worker "
-                                              f"{w}", avoid={w})
+                if k == 0:  # the one it runs (the first assigned); the others only waited
+                    self._again(i, args, attempt, f"no result within {self.timeout:g} s on "
+                                                  f"worker {w}", avoid={w})
+                else:
+                    self._submit(i, args, attempt, avoid={w})
             self._stop_worker(w)
 
     def _stop_worker(self, address: str) -> None:
-        """Kill a hung worker of our own LocalCluster (its nanny starts a fresh one); a
-        worker of someone else's cluster is only avoided."""
+        """Kill a hung worker of our own LocalCluster (its nanny, in this process, starts a
+        fresh one); a worker of someone else's cluster is only avoided."""
         if self.cluster is None:
             return
-        import psutil
-
-        info = self.client.scheduler_info(n_workers=-1)["workers"].get(address, {})
-        pid = info.get("pid")
-        try:
-            proc = psutil.Process(int(pid))
-            if os.getpid() in {p.pid for p in proc.parents()}:  # only our own descendants
-                os.kill(proc.pid, signal.SIGKILL)
-        except (TypeError, ValueError, psutil.Error, OSError):
-            pass
+        for nanny in list(self.cluster.workers.values()):
+            if getattr(nanny, "worker_address", None) == address and nanny.pid:
+                try:
+                    os.kill(int(nanny.pid), signal.SIGKILL)
+                except OSError:
+                    pass
 
 
 def _why(exc: BaseException) -> str:
