@@ -145,3 +145,28 @@ def test_highs_interrupted_by_cancel_is_reported_interrupted_and_log_removed(tmp
     out = real(h, lp, "highspy", False)
     assert out.status == "interrupted" and out.x is None
     assert glob.glob(str(tmp_path / "optreserve-highs-*.log")) == []
+
+
+def test_a_log_left_by_a_killed_run_is_removed_by_the_next_solve(tmp_path, monkeypatch):
+    """SIGKILL cannot be caught: the log of a run that no longer exists (its process id in
+    the name) is removed by the next solve on the machine; a live run's log stays."""
+    import tempfile
+
+    from optreserve.solver import backends
+
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    live = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
+        monkeypatch.setattr(backends, "_stale_logs_checked", False)
+        stale = tmp_path / f"optreserve-highs-{dead.pid}-abc.log"
+        busy = tmp_path / f"optreserve-highs-{live.pid}-def.log"
+        stale.write_text("old")
+        busy.write_text("running")
+        log = backends._new_log()
+        os.unlink(log.name)
+        assert not stale.exists() and busy.exists()
+    finally:
+        live.kill()
+        live.wait()
