@@ -52,14 +52,16 @@ def _snapshot(folder: Path) -> dict:
     return out
 
 
-def _small(folder: Path, size: float = 80.0, name: str = "test case", area: str = "Stennmoor"):
+def _small(folder: Path, size: float = 80.0, name: str = "test case", area: str = "Stennmoor",
+           **extra):
     """One provider of 500 MW at droop 2-10 %: at most 100 MW at 0.2 Hz (no damping), so a
     step above 100 MW is infeasible (settled law delta f = dP / sum K, common practice)."""
     s = settings()
     s["name"] = name
     return write_case(folder, s,
                       [{"unit": "Stenn_1", "area": area, "capacity_mw": 500, "output_mw": 300,
-                        "droop_min_pct": 2, "droop_max_pct": 10, "price_up_per_mw_h": 2}],
+                        "droop_min_pct": 2, "droop_max_pct": 10, "price_up_per_mw_h": 2,
+                        **extra}],
                       [{"area": area, "load_mw": 4000}],
                       [{"event": "step", "kind": "load_step", "area": area, "size_mw": size}])
 
@@ -346,3 +348,16 @@ def test_a_failing_plot_is_a_warning_and_the_tables_are_written(tmp_path, capsys
     assert {"sweep.csv", "sweep.json"} <= set(os.listdir(out))
     assert not (out / "sweep.png").exists()
     assert "sweep.png" not in json.loads((out / "sweep.json").read_text())["files"]
+
+
+def test_simulate_plots_names_with_math_markup(tmp_path, capsys):
+    """simulate used to write nothing for a case named with $...$ (matplotlib mathtext): the
+    plots are drawn with the text as typed and the tables are written."""
+    case = _small(tmp_path / "c", name="Study $\\foo$", area="area_$1_$2", inertia_s=5)
+    assert main(["solve", str(case), "--out", str(tmp_path / "r"), "--quiet"]) == 0
+    out = tmp_path / "sim"
+    assert main(["simulate", str(case), "--allocation", str(tmp_path / "r"), "--all",
+                 "--out", str(out), "--duration", "10", "--quiet"]) == 0
+    assert (out / "plot_step.png").read_bytes()[:4] == b"\x89PNG"
+    assert (out / "simulation_summary.csv").is_file()
+    assert "warning" not in capsys.readouterr().err
