@@ -170,3 +170,31 @@ def test_a_log_left_by_a_killed_run_is_removed_by_the_next_solve(tmp_path, monke
     finally:
         live.kill()
         live.wait()
+
+
+def test_sigterm_during_a_dask_sweep_exits_143_and_writes_nothing(tmp_path):
+    """The signal lands once the LocalCluster's worker processes are being started (a
+    marker: this process's descendants); it takes effect when the cluster is up, the cluster
+    is closed in order, and no table, staging folder or traceback is left."""
+    import psutil
+
+    out = tmp_path / "o"
+    p = subprocess.Popen([sys.executable, "-m", "optreserve", "sweep",
+                          str(ROOT / "instances" / "demo-tri-valley"), "--vary",
+                          "price_scale=0.5:2:0.01", "--out", str(out), "--workers", "2",
+                          "--quiet"], env=dict(os.environ, PYTHONPATH=str(ROOT)),
+                         stderr=subprocess.PIPE, text=True)
+    try:
+        deadline = time.monotonic() + 120
+        while len(psutil.Process(p.pid).children(recursive=True)) < 3:
+            assert p.poll() is None and time.monotonic() < deadline
+            time.sleep(0.05)
+        p.send_signal(signal.SIGTERM)
+        _, stderr = p.communicate(timeout=120)
+    finally:
+        if p.poll() is None:
+            p.kill()
+            p.wait()
+    assert p.returncode == 143, stderr
+    assert stderr.strip().splitlines()[-1] == "interrupted (SIGTERM); no output written"
+    assert os.listdir(tmp_path) == []

@@ -22,6 +22,8 @@ import time
 from collections import deque
 from collections.abc import Callable
 
+from optreserve import interrupt
+
 DELIVERY_ATTEMPTS = 3
 POLL_S = 0.25  # how often the client looks for finished and for hung points
 FETCH_S = 10.0  # longest wait for a finished point's row from its worker
@@ -53,19 +55,28 @@ def run_dask(fn, shared, tasks, workers, scheduler, bar, point_timeout_s: float 
     from dask.distributed import Client, LocalCluster
 
     with dask.config.set(DASK_CONFIG):
-        cluster = None
-        if scheduler is None:
-            cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1,
-                                   processes=True, host="127.0.0.1", dashboard_address=None,
-                                   worker_dashboard_address=None, silence_logs=logging.ERROR)
-            client = Client(cluster)
-        else:
-            client = Client(scheduler)
+        cluster = client = None
         try:
+            # a signal while the cluster starts takes effect once it is up (then it is closed
+            # again in order; cut mid-start, its processes would report failures)
+            with interrupt.deferred():
+                if scheduler is None:
+                    cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1,
+                                           processes=True, host="127.0.0.1",
+                                           dashboard_address=None,
+                                           worker_dashboard_address=None,
+                                           silence_logs=logging.ERROR)
+                    client = Client(cluster)
+                else:
+                    client = Client(scheduler)
             return _Delivery(client, cluster, fn, shared, bar, point_timeout_s,
                              lost_row).run(tasks)
+        except KeyboardInterrupt:  # Ctrl-C, SIGTERM: close quietly (no comm tracebacks)
+            logging.getLogger("distributed").setLevel(logging.CRITICAL)
+            raise
         finally:
-            client.close()
+            if client is not None:
+                client.close()
             if cluster is not None:
                 cluster.close()
 
