@@ -89,7 +89,7 @@ def test_killing_one_worker_mid_sweep_loses_no_point(case_dir, monkeypatch):
     killed = []
 
     def kill_one(client, pids):
-        pid = sorted(pids.values())[0]
+        pid = min(pids.values())
         os.kill(pid, signal.SIGKILL)
         killed.append(pid)
 
@@ -120,7 +120,7 @@ def test_a_stopped_worker_costs_one_timeout_not_the_sweep(case_dir, monkeypatch)
 
     def stop_one(client, pids):
         busy = [a for a, keys in client.processing().items() if keys]
-        pid = pids[busy[0]] if busy else sorted(pids.values())[0]
+        pid = pids[busy[0]] if busy else min(pids.values())
         os.kill(pid, signal.SIGSTOP)
         stopped.append(pid)
 
