@@ -41,7 +41,7 @@ MAX_POINTS = 100_000
 PARQUET_MIN_ROWS = 10_000
 ENGINE = "highspy"  # per-point Pyomo building would dominate a sweep (docs/performance.md)
 # On Dask: a point not back from its worker after this long is taken from it and run again
-# elsewhere (a stopped or hung worker); after DELIVERY_ATTEMPTS tries its row says LOST.
+# elsewhere (a stopped or hung worker); after 3 tries its row says LOST (studies/delivery.py).
 POINT_TIMEOUT_S = 600.0
 LOST = "lost"
 
