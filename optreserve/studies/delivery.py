@@ -4,8 +4,10 @@
   tasks elsewhere (and `retries`), and a point whose task is lost or cancelled anyway (every
   worker died and the shared case went with them) is submitted again, the case scattered anew.
 * A point not back within `point_timeout_s` of its worker starting on it (WARMUP_S more for
-  a worker's first point) is taken away and run on another worker (a stopped or hung worker); a hung worker of our own LocalCluster is
-  killed (its nanny starts a fresh one).
+  a worker's first point) is taken away and run on another worker (a stopped or hung
+  worker); a hung worker of our own LocalCluster is killed (its nanny starts a fresh one).
+* At most as many points are handed to Dask at a time as there are worker threads, so a
+  point "processing" on a worker is the one it runs.
 * A point still not delivered after DELIVERY_ATTEMPTS tries becomes a row saying so (status
   "lost"; the command exits with code 4) instead of silently vanishing.
 * Our LocalCluster listens on 127.0.0.1 only and serves no web pages (no dashboard, no
