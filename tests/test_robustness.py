@@ -155,7 +155,8 @@ def test_infeasible_case_writes_only_the_diagnosis(tmp_path, capsys):
     assert main(["solve", str(case), "--out", str(out)]) == 3
     err = capsys.readouterr().err
     assert "big_trip" in err and "MW" in err
-    assert sorted(p.name for p in out.iterdir()) == ["diagnosis.csv"]
+    assert sorted(p.name for p in out.iterdir()) == [".optreserve-manifest.json",
+                                                      "diagnosis.csv"]
     diag = pd.read_csv(out / "diagnosis.csv")
     # most the small unit can give: 200/(0.04*50) = 100 MW/Hz * 0.2 = 20 MW (its 100 MW
     # room allows it); load self-regulation 10 MW/Hz * 0.2 = 2 MW: 700 - 22 = 678 MW short

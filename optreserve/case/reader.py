@@ -95,6 +95,12 @@ def load_case(path: str | Path) -> Case:
     if not folder.is_dir():
         col.error(str(folder), "is not a case folder (expected a directory with case.toml)")
         col.raise_if_any()
+    try:  # an unreadable folder is an input error, not a crash
+        next(folder.iterdir(), None)
+        (folder / "case.toml").is_file()
+    except PermissionError as exc:
+        col.error(str(folder), f"cannot be read ({exc.strerror})")
+        col.raise_if_any()
 
     def lab(name: str) -> str:
         return str(folder / name)

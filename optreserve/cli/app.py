@@ -6,7 +6,7 @@ import argparse
 import json
 import sys
 
-from optreserve import __version__, progress
+from optreserve import __version__, interrupt, progress
 from optreserve.cli.common import (
     EXIT_INFEASIBLE,
     EXIT_INPUT,
@@ -103,6 +103,15 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
+    # SIGINT -> 130, SIGTERM -> 143: HiGHS is asked to stop, nothing is written
+    from optreserve.output.staging import forget_committed
+
+    forget_committed()
+    with interrupt.handling():
+        return _main(argv)
+
+
+def _main(argv: list[str] | None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "command", None):
@@ -134,9 +143,22 @@ def main(argv: list[str] | None = None) -> int:
         return exc.exit_code
     except BrokenPipeError:  # output piped into head & co.
         return EXIT_OK
-    except KeyboardInterrupt:
-        print("interrupted; no output written", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        return _interrupted(exc)
     except Exception as exc:  # last line of defence: one line, no traceback
         print(clean(f"error: unexpected {type(exc).__name__}: {exc}"), file=sys.stderr)
         return EXIT_OTHER
+
+
+def _interrupted(exc: KeyboardInterrupt) -> int:
+    """Exit code 128 + signal; say whether an output folder had been completed before it."""
+    from optreserve.output.staging import committed
+
+    code = getattr(exc, "exit_code", 130)
+    name = {130: "Ctrl-C", 143: "SIGTERM"}.get(code, f"signal {code - 128}")
+    done = committed()
+    if done:
+        print(f"interrupted ({name}) after {done[-1]} was written", file=sys.stderr)
+    else:
+        print(f"interrupted ({name}); no output written", file=sys.stderr)
+    return code

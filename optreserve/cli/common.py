@@ -12,8 +12,10 @@ EXIT_OK, EXIT_OTHER, EXIT_INPUT, EXIT_INFEASIBLE = 0, 1, 2, 3
 STRICT_HELP = "treat every warning about the case as an input error (exit 2)"
 EXIT_NO_ALLOCATION = 4  # time limit before any allocation met the limits (NoAllocationYet)
 EXIT_CASES_FAILED = 5  # batch or sweep: a case or point was not delivered (its row says why)
+EXIT_INCOMPLETE = EXIT_CASES_FAILED  # sweep/batch: a point could not be delivered ("lost")
 # solved, but the simulated nadir of the allocation could not be confirmed within the limit
 EXIT_NADIR_UNCONFIRMED = 6
+EXIT_SIGINT, EXIT_SIGTERM = 130, 143  # 128 + signal number; nothing written
 
 
 # C0 and C1 control characters (escape sequences, carriage returns, bells...) but newline

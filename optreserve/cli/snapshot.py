@@ -21,7 +21,7 @@ from optreserve.cli.common import (
 )
 from optreserve.errors import InfeasibleError
 from optreserve.output.results import CAUTION, Result, write_table
-from optreserve.output.staging import check_out, staged_output
+from optreserve.output.staging import check_out, register, staged_output
 from optreserve.solver.screen import event_capability, screening_scope
 from optreserve.solver.timing import close_total
 
@@ -86,7 +86,7 @@ def cmd_solve(args) -> int:
     t0 = time.perf_counter()
     out_dir = Path(args.out) if args.out else None
     if out_dir is not None:
-        check_out(out_dir, args.force)
+        check_out(out_dir, args.force, inputs=[args.case], command="solve")
     if getattr(args, "report", False) and out_dir is None:
         print("error: --report needs --out DIR (the report is written next to the results)",
               file=sys.stderr)
@@ -108,7 +108,7 @@ def cmd_solve(args) -> int:
             _write_diagnosis(exc, out_dir, args.force)
             if getattr(args, "report", False):
                 path = _solve_report(out_dir, args)
-                if not args.quiet:
+                if not args.quiet and path is not None:
                     print(f"wrote {path}", file=sys.stderr)
         raise
     if not args.quiet:
@@ -157,10 +157,21 @@ def _compare(case, result):
     return cmp
 
 
-def _solve_report(out_dir: Path, args) -> Path:
-    from optreserve.output.report import build_report
+def _solve_report(out_dir: Path, args) -> Path | None:
+    """report.html beside the results; a report that fails is a warning (the result files
+    are complete without it)."""
+    from optreserve.output.plotstyle import literal_text
+    from optreserve.output.report import REPORT_NAME, build_report
 
-    return build_report(out_dir, case_dir=args.case)
+    try:
+        with literal_text():
+            path = build_report(out_dir, case_dir=args.case)
+    except Exception as exc:
+        print(f"warning: report.html not written: {type(exc).__name__}: {exc}".splitlines()[0],
+              file=sys.stderr)
+        return None
+    register(out_dir, [REPORT_NAME])
+    return path
 
 
 def _write_diagnosis(exc: InfeasibleError, out_dir: Path, force: bool) -> None:
@@ -252,7 +263,8 @@ def cmd_generate(args) -> int:
     try:
         spec = Spec(units=args.units, areas=args.areas, links=args.links, periods=args.periods,
                     events=args.events, seed=args.seed)
-        generate(spec, out)
+        with staged_output(out, args.force, group="case") as tmp:  # all files or none
+            generate(spec, tmp)
     except ValueError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_INPUT
@@ -266,9 +278,15 @@ def cmd_generate(args) -> int:
 
 # ------------------------------------------------------------------ report
 def cmd_report(args) -> int:
-    from optreserve.output.report import build_report
+    from optreserve.output.plotstyle import literal_text
+    from optreserve.output.report import REPORT_NAME, build_report
 
-    path = build_report(args.result, case_dir=args.case)
+    with literal_text():
+        path = build_report(args.result, case_dir=args.case)
+    try:  # the report is complete; a read-only manifest only means a later --force keeps it
+        register(args.result, [REPORT_NAME])
+    except OSError:
+        pass
     if not args.quiet:
         print(f"wrote {path}")
         print(CAUTION)

@@ -11,6 +11,7 @@ from optreserve.case.nodal import area_equivalent
 from optreserve.case.reader import load_case
 from optreserve.cli.common import (
     EXIT_CASES_FAILED,
+    EXIT_INCOMPLETE,
     EXIT_INPUT,
     EXIT_OK,
     EXIT_OTHER,
@@ -34,7 +35,7 @@ def cmd_retune(args) -> int:
 
     out_dir = Path(args.out) if args.out else None
     if out_dir is not None:
-        check_out(out_dir, args.force)
+        check_out(out_dir, args.force, inputs=[args.case], command="retune")
     case = load_case(args.case)
     _warn(case, args.quiet, getattr(args, "strict", False))
     keep = tuple(u.strip() for u in (args.keep or "").split(",") if u.strip())
@@ -125,7 +126,7 @@ def cmd_simulate(args) -> int:
     from optreserve.dynamics.simulate import read_allocation, simulate
 
     out_dir = Path(args.out)
-    check_out(out_dir, args.force)
+    check_out(out_dir, args.force, inputs=[args.case], command="simulate")
     if args.duration is not None and not args.duration > 0.5:
         print("error: --duration must be more than 0.5 s", file=sys.stderr)
         return EXIT_INPUT
@@ -192,14 +193,15 @@ def _add_simulate_parser(sub) -> None:
 def cmd_sweep(args) -> int:
     from optreserve.studies.sweep import grid, parse_vary, run_sweep
 
-    check_out(Path(args.out), args.force)
+    check_out(Path(args.out), args.force, inputs=[args.case], command="sweep")
     case = load_case(args.case)
     _warn(case, args.quiet)
     varies = [parse_vary(spec, case) for spec in args.vary]
     grid(varies)  # a bad combination fails here, before any cluster starts
     return _run_study(args, "sweep", case.name, [v.key for v in varies],
                       lambda w, sch, prog: run_sweep(case, varies, workers=w, scheduler=sch,
-                                                     progress=prog),
+                                                     progress=prog,
+                                                     point_timeout_s=args.point_timeout),
                       {"case_path": str(case.path), "vary": list(args.vary)})
 
 
@@ -207,12 +209,13 @@ def cmd_batch(args) -> int:
     from optreserve.studies.batch import case_writer, run_cases
     from optreserve.studies.sweep import case_folders
 
-    check_out(Path(args.out), args.force)
     folders = case_folders(Path(args.folder))
+    check_out(Path(args.out), args.force, inputs=[args.folder, *folders], command="batch")
     kept = {}
 
     def run(w, sch, prog):
-        table, payloads = run_cases(Path(args.folder), workers=w, scheduler=sch, progress=prog)
+        table, payloads = run_cases(Path(args.folder), workers=w, scheduler=sch, progress=prog,
+                                    point_timeout_s=args.point_timeout)
         kept.update(payloads)
         return table
 
@@ -221,7 +224,7 @@ def cmd_batch(args) -> int:
 
 
 def _run_study(args, name, title, keys, run, meta, extra=None) -> int:
-    from optreserve.studies.sweep import ENGINE, default_workers, write_study
+    from optreserve.studies.sweep import ENGINE, LOST, default_workers, write_study
 
     if args.workers is not None and args.workers < 1:
         print("error: --workers must be at least 1", file=sys.stderr)
@@ -252,6 +255,8 @@ def _run_study(args, name, title, keys, run, meta, extra=None) -> int:
                   file=sys.stderr)
             return EXIT_CASES_FAILED
         return EXIT_OK
+    if (table["status"] == LOST).any():  # a point that could not be delivered
+        return EXIT_INCOMPLETE
     return EXIT_OK if (table["status"] != "error").any() else EXIT_OTHER
 
 
@@ -267,6 +272,9 @@ def _add_study_parsers(sub) -> None:
         p.add_argument("--force", action="store_true", help="write into a non-empty --out "
                        "folder (only optreserve's files change)")
         p.add_argument("--quiet", action="store_true", help="print nothing on success")
+        p.add_argument("--point-timeout", type=float, metavar="S", help="on Dask: a point "
+                       "not back after S seconds on its worker is run again elsewhere (at "
+                       "most 3 tries, then a 'lost' row and exit code 5); default 600")
 
     w = sub.add_parser("sweep", help="solve a case over a grid of limits, sizes or prices",
                        description="Solve the case at every point of a grid and write "

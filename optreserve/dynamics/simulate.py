@@ -51,6 +51,7 @@ from optreserve.dynamics.system import (
 )
 from optreserve.errors import CaseError, OptreserveError, Problem
 from optreserve.output.folder import allocation_problems, read_allocation  # noqa: F401
+from optreserve.output.plotstyle import plot_or_warn
 from optreserve.output.results import CAUTION, write_table
 from optreserve.output.staging import staged_output
 from optreserve.verify.settle import settle_instances
@@ -120,7 +121,7 @@ class Simulation:
 
         t0 = time.perf_counter()
         out = Path(out_dir)
-        with staged_output(out, force) as tmp:
+        with staged_output(out, force, group="simulation") as tmp:
             for frame, name in ((self.summary, SUMMARY_FILE), (self.links, LINKS_FILE)):
                 if frame is None or (name == LINKS_FILE and not len(frame)):
                     continue
@@ -128,12 +129,15 @@ class Simulation:
             names = file_names(list(self.series))
             for ev, stem in names.items():
                 write_table(self.series[ev], tmp / f"series_{stem}.csv")
-                if plots:
-                    plot_event(self, ev, tmp / f"plot_{stem}.png")
+                if plots:  # a failing plot is a warning; the tables are still written
+                    png = tmp / f"plot_{stem}.png"
+                    plot_or_warn(lambda ev=ev, png=png: plot_event(self, ev, png), png,
+                                 self.warnings)
             self.timings_s["write"] = time.perf_counter() - t0
             doc = {"case": self.case.name, "period": self.period, "settings": self.settings,
                    "files": {ev: {"series": f"series_{s}.csv",
-                                  "plot": f"plot_{s}.png" if plots else None}
+                                  "plot": f"plot_{s}.png" if (tmp / f"plot_{s}.png")
+                                  .exists() else None}
                              for ev, s in names.items()},
                    "warnings": list(self.warnings),
                    "timings_s": {k: round(float(v), 4) for k, v in self.timings_s.items()},

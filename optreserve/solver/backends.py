@@ -11,7 +11,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from optreserve import progress
+from optreserve import interrupt, progress
 from optreserve.model.program import LinearProgram
 
 # Above this many nonzeros "auto" loads HiGHS in bulk: per-expression Pyomo machinery, not the
@@ -82,12 +82,19 @@ def _options(h, time_limit, mip_gap, verbose, log_file=None):
 def solve_highs(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
                 want_duals=False, start: np.ndarray | None = None) -> Outcome:
     """Load the whole matrix into highspy with one passModel call and solve."""
-    import highspy
-
     t0 = time.perf_counter()
     h = new_highs()
-    log = tempfile.NamedTemporaryFile(prefix="optreserve-highs-", suffix=".log", delete=False)
-    log.close()
+    log = _new_log()
+    try:
+        return _solve_highs(h, lp, log, t0, time_limit, mip_gap, verbose, want_duals, start)
+    finally:
+        with interrupt.deferred():  # the log goes whatever happens (Ctrl-C, SIGTERM, errors)
+            _remove(log.name)
+
+
+def _solve_highs(h, lp, log, t0, time_limit, mip_gap, verbose, want_duals, start) -> Outcome:
+    import highspy
+
     _options(h, time_limit, mip_gap, verbose, log.name)
     progress.step("HiGHS: loading the model", log.name)
     A = lp.A.tocsc()
@@ -108,18 +115,91 @@ def solve_highs(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
         h.setSolution(sol)
     emit = time.perf_counter() - t0
     progress.step("HiGHS: solving" + (" (mixed-integer)" if lp.is_mip else ""), log.name)
-    try:
-        h.run()
-        out = _outcome_from_highs(h, lp, "highspy", want_duals)
-    finally:
-        warnings = solver_warnings(log.name)
-        os.unlink(log.name)
+    run_interruptible(h)
+    out = _outcome_from_highs(h, lp, "highspy", want_duals)
+    warnings = solver_warnings(log.name)
     if start is not None:  # HiGHS checks a warm start and reports why it was not feasible
         warnings = [w for w in warnings if not any(
             k in w for k in ("nfeasib", "Assessing feasibility", "Solution has"))]
     out.emit_time_s = emit
     out.warnings = warnings
     return out
+
+
+LOG_PREFIX = "optreserve-highs-"
+_stale_logs_checked = False
+
+
+def _new_log():
+    """A temporary HiGHS log named after this process, so that one left by a killed run
+    (SIGKILL) can be told apart and is removed by the next solve on this machine."""
+    global _stale_logs_checked
+    if not _stale_logs_checked:
+        _stale_logs_checked = True
+        _remove_stale_logs()
+    log = tempfile.NamedTemporaryFile(prefix=f"{LOG_PREFIX}{os.getpid()}-", suffix=".log",
+                                      delete=False)
+    log.close()
+    return log
+
+
+def _remove(path: str) -> None:
+    try:
+        os.unlink(path)
+    except FileNotFoundError:
+        pass
+
+
+def _remove_stale_logs() -> None:
+    import glob
+
+    for path in glob.glob(os.path.join(tempfile.gettempdir(), f"{LOG_PREFIX}*-*.log")):
+        pid = os.path.basename(path)[len(LOG_PREFIX):].split("-", 1)[0]
+        if not pid.isdigit() or int(pid) == os.getpid():
+            continue
+        try:
+            os.kill(int(pid), 0)
+        except ProcessLookupError:  # its run is gone
+            try:
+                os.unlink(path)
+            except OSError:
+                pass
+        except OSError:
+            pass
+
+
+def run_interruptible(h) -> None:
+    """h.run() with highspy's user-interrupt callbacks on: a signal meanwhile asks HiGHS to
+    stop (model status kInterrupt) and is raised as Interrupted once run() has returned."""
+    h.HandleUserInterrupt = True
+    with interrupt.deferred(cancel=h.cancelSolve):
+        h.run()
+
+
+def _interruptible_pyomo(base):
+    """Pyomo's HiGHS interface whose run can be interrupted the same way (Pyomo switches on
+    highspy's user-interrupt callbacks itself; cancelSolve makes them stop HiGHS)."""
+
+    import logging
+
+    class InterruptibleHighs(base):
+        def _solve(self):
+            # Pyomo warns of the kInterrupt status it has no name for; we report it ourselves
+            quiet = logging.getLogger(base.__module__)
+            drop = _DropInterruptWarning()
+            quiet.addFilter(drop)
+            try:
+                with interrupt.deferred(cancel=self._solver_model.cancelSolve):
+                    return super()._solve()
+            finally:
+                quiet.removeFilter(drop)
+
+    return InterruptibleHighs
+
+
+class _DropInterruptWarning:
+    def filter(self, record) -> bool:
+        return "kInterrupt" not in record.getMessage()
 
 
 def solver_warnings(path) -> list[str]:
@@ -146,7 +226,9 @@ def _outcome_from_highs(h, lp, engine, want_duals) -> Outcome:
     S = highspy.HighsModelStatus
     if ms == S.kOptimal:
         status = "optimal"
-    elif ms in (S.kTimeLimit, S.kIterationLimit, S.kInterrupt, S.kSolutionLimit):
+    elif ms == S.kInterrupt:  # stopped on request (Ctrl-C, SIGTERM): never a time limit
+        status = "interrupted"
+    elif ms in (S.kTimeLimit, S.kIterationLimit, S.kSolutionLimit):
         status = "time_limit" if has_sol else "no_solution"
     elif ms == S.kInfeasible:
         status = "infeasible"
@@ -181,15 +263,14 @@ def solve_pyomo(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
     progress.step("building the Pyomo model")
     m = to_pyomo(lp)
     emit = time.perf_counter() - t0
-    opt = Highs()
+    opt = _interruptible_pyomo(Highs)()
     kwargs = {"tee": bool(verbose), "load_solutions": False,
               "raise_exception_on_nonoptimal_result": False}
     if time_limit is not None:
         kwargs["time_limit"] = float(time_limit)
     if mip_gap is not None:
         kwargs["rel_gap"] = float(mip_gap)
-    log = tempfile.NamedTemporaryFile(prefix="optreserve-highs-", suffix=".log", delete=False)
-    log.close()
+    log = _new_log()
     kwargs["solver_options"] = {"log_file": log.name, "random_seed": 0,
                                 "threads": HIGHS_THREADS}
     progress.step("HiGHS via Pyomo: solving" + (" (mixed-integer)" if lp.is_mip else ""),
@@ -197,9 +278,10 @@ def solve_pyomo(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
     t1 = time.perf_counter()
     try:
         res = opt.solve(m, **kwargs)
-    finally:
         warnings = solver_warnings(log.name)
-        os.unlink(log.name)
+    finally:
+        with interrupt.deferred():  # the log goes whatever happens (Ctrl-C, SIGTERM, errors)
+            _remove(log.name)
     h = opt._solver_model  # the highspy object Pyomo drove
     out = _outcome_from_highs(h, lp, "pyomo", want_duals=False)
     # Pyomo's hand-over to HiGHS counts as building; HiGHS's own run time as solving

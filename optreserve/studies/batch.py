@@ -46,10 +46,12 @@ def solve_case_folder(_shared, index: int, path: str, engine: str = ENGINE) -> d
 
 
 def run_cases(folder: Path, workers: int | None = None, scheduler: str | None = None,
-              progress: bool = False, engine: str = ENGINE) -> tuple[pd.DataFrame, dict]:
+              progress: bool = False, engine: str = ENGINE,
+              point_timeout_s: float | None = None) -> tuple[pd.DataFrame, dict]:
     """(batch table, {case folder name: Result, diagnosis DataFrame or None})."""
     tasks = [(i, (str(p), engine)) for i, p in enumerate(case_folders(folder))]
-    rows = _run(solve_case_folder, None, tasks, workers, scheduler, progress, "batch")
+    rows = _run(solve_case_folder, None, tasks, workers, scheduler, progress, "batch",
+                point_timeout_s)
     payloads = {r["case"]: r.pop(PAYLOAD, None) for r in rows}
     return _table(rows, ["case"]), payloads
 

@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import itertools
 import json
-import logging
 import math
 import os
 import re
@@ -31,6 +30,7 @@ import pandas as pd
 
 from optreserve.case.data import Case
 from optreserve.errors import InfeasibleError, OptreserveError
+from optreserve.output.plotstyle import plot_or_warn
 from optreserve.output.results import CAUTION, write_table
 from optreserve.output.staging import staged_output
 
@@ -40,6 +40,10 @@ MAX_POINTS = 100_000
 # Parquet beside the CSV from this many rows on (typed, compressed, fast to load again)
 PARQUET_MIN_ROWS = 10_000
 ENGINE = "highspy"  # per-point Pyomo building would dominate a sweep (docs/performance.md)
+# On Dask: a point not back from its worker after this long is taken from it and run again
+# elsewhere (a stopped or hung worker); after 3 tries its row says LOST (studies/delivery.py).
+POINT_TIMEOUT_S = 600.0
+LOST = "lost"
 
 
 class SweepError(OptreserveError):
@@ -236,15 +240,16 @@ def run_point(case: Case, index: int, point: dict[str, float], engine: str = ENG
 # ------------------------------------------------------------------ running many
 def run_sweep(case: Case, varies: list[Vary], workers: int | None = None,
               scheduler: str | None = None, progress: bool = False,
-              engine: str = ENGINE) -> pd.DataFrame:
+              engine: str = ENGINE, point_timeout_s: float | None = None) -> pd.DataFrame:
     """One row per grid point, in grid order. workers None or 1 and no scheduler: serial in
     this process; otherwise on Dask (a LocalCluster of `workers` processes, or the cluster at
-    `scheduler`). The case goes to each worker once, not once per point."""
+    `scheduler`). The case goes to each worker once, not once per point. point_timeout_s
+    (Dask only, default POINT_TIMEOUT_S): a point not back by then is run again elsewhere."""
     for v in varies:
         check_vary(case, v)
     points = grid(varies)
     tasks = [(i, (p, engine)) for i, p in enumerate(points)]
-    rows = _run(run_point, case, tasks, workers, scheduler, progress, "sweep")
+    rows = _run(run_point, case, tasks, workers, scheduler, progress, "sweep", point_timeout_s)
     return _table(rows, [v.key for v in varies])
 
 
@@ -260,15 +265,17 @@ def case_folders(folder: Path) -> list[Path]:
 
 
 def run_batch(folder: Path, workers: int | None = None, scheduler: str | None = None,
-              progress: bool = False, engine: str = ENGINE) -> pd.DataFrame:
+              progress: bool = False, engine: str = ENGINE,
+              point_timeout_s: float | None = None) -> pd.DataFrame:
     """One row per case folder inside `folder`; each worker reads its case from the path
     (studies/batch.py also returns each case's result for its own folder)."""
     from optreserve.studies.batch import run_cases
 
-    return run_cases(folder, workers, scheduler, progress, engine)[0]
+    return run_cases(folder, workers, scheduler, progress, engine, point_timeout_s)[0]
 
 
-def _run(fn, shared, tasks, workers, scheduler, progress, what) -> list[dict]:
+def _run(fn, shared, tasks, workers, scheduler, progress, what, point_timeout_s=None
+         ) -> list[dict]:
     """fn(shared, index, *args) for every (index, args) task; shared goes to a worker once."""
     bar = _bar(len(tasks), progress, what)
     try:
@@ -278,43 +285,20 @@ def _run(fn, shared, tasks, workers, scheduler, progress, what) -> list[dict]:
                 rows.append(fn(shared, i, *args))
                 bar.update(1)
             return rows
-        return _run_dask(fn, shared, tasks, workers, scheduler, bar)
+        from optreserve.studies.delivery import run_dask
+
+        def where(i, args):  # what names the point in its row: a case folder or the values
+            return {"case": Path(args[0]).name} if isinstance(args[0], str) else dict(args[0])
+
+        lost = {"status": LOST, "objective_per_h": None, "objective_total": None,
+                "change_penalty": None, "binding_events": "", "binding_links": "",
+                "solve_s": None}
+        return run_dask(fn, shared, tasks, workers, scheduler, bar,
+                        POINT_TIMEOUT_S if point_timeout_s is None else point_timeout_s,
+                        lambda i, args, text: {"point": i, **where(i, args), **lost,
+                                               "error": text})
     finally:
         bar.close()
-
-
-def _run_dask(fn, shared, tasks, workers, scheduler, bar) -> list[dict]:
-    from dask.distributed import Client, LocalCluster, as_completed
-
-    cluster = None
-    if scheduler is None:
-        cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1, processes=True,
-                               dashboard_address=None, silence_logs=logging.ERROR)
-        client = Client(cluster)
-    else:
-        client = Client(scheduler)
-    try:
-        # shared data (the case) travels to every worker once; a task carries only its point
-        data = client.scatter(shared, broadcast=True) if shared is not None else None
-        futures = {client.submit(fn, data, i, *args, pure=False): (i, args)
-                   for i, args in tasks}
-        rows = []
-        for f in as_completed(futures):
-            try:
-                rows.append(f.result())
-            except Exception as exc:  # the worker itself failed (killed, lost, ...)
-                i, args = futures[f]
-                where = ({"case": Path(args[0]).name} if isinstance(args[0], str)
-                         else dict(args[0]))
-                rows.append({"point": i, **where,
-                             **_failed("error", f"{type(exc).__name__}: {exc}"),
-                             "solve_s": None})
-            bar.update(1)
-        return rows
-    finally:
-        client.close()
-        if cluster is not None:
-            cluster.close()
 
 
 def _bar(total: int, progress: bool, what: str):
@@ -351,7 +335,7 @@ def write_study(table: pd.DataFrame, out: Path, name: str, keys: list[str], meta
     two keys vary, and NAME.json (what was run, the counts, the caution); all at once.
     extra(tmp) -> names: further files or folders written into the same staging folder."""
     written = []
-    with staged_output(Path(out), force) as tmp:
+    with staged_output(Path(out), force, group=name) as tmp:
         if extra is not None:
             written += extra(tmp)
         write_table(table, tmp / f"{name}.csv", exact=tuple(keys))  # swept values in full
@@ -359,7 +343,8 @@ def write_study(table: pd.DataFrame, out: Path, name: str, keys: list[str], meta
         if len(table) >= PARQUET_MIN_ROWS:
             table.to_parquet(tmp / f"{name}.parquet", index=False)
             written.append(f"{name}.parquet")
-        if plot_costs(table, keys, tmp / f"{name}.png", meta.get("case", "")):
+        png = tmp / f"{name}.png"
+        if plot_or_warn(lambda: plot_costs(table, keys, png, meta.get("case", "")), png):
             written.append(f"{name}.png")
         counts = table["status"].value_counts().to_dict()
         doc = {**meta, "cases" if keys == ["case"] else "points": len(table),
