@@ -47,11 +47,11 @@ from optreserve.case.columns import (
     series_hints,
 )
 from optreserve.case.csvio import FALSE_WORDS, TRUE_WORDS, _read_csv, _Table, _typed_table
-from optreserve.case.governor_columns import apply_governor_columns
 from optreserve.case.data import Case, DroopSettings, Limits, SolverSettings
-from optreserve.case.products import check_products
-from optreserve.case.problems import MAX_PROBLEMS, _Collector
+from optreserve.case.governor_columns import apply_governor_columns
 from optreserve.case.nodal import nodal_columns, read_nodal
+from optreserve.case.problems import MAX_PROBLEMS, _Collector
+from optreserve.case.products import check_products
 from optreserve.case.rules import fill_limits, rule_warnings
 from optreserve.case.series import SERIES, _check_series, _period_key
 from optreserve.case.toml_settings import (

@@ -160,7 +160,7 @@ def _compare(case, result):
 def _solve_report(out_dir: Path, args) -> Path | None:
     """report.html beside the results; a report that fails is a warning (the result files
     are complete without it)."""
-    from optreserve.output.plotstyle import literal_text
+    from optreserve.output.plot_style import literal_text
     from optreserve.output.report import REPORT_NAME, build_report
 
     try:
@@ -278,7 +278,7 @@ def cmd_generate(args) -> int:
 
 # ------------------------------------------------------------------ report
 def cmd_report(args) -> int:
-    from optreserve.output.plotstyle import literal_text
+    from optreserve.output.plot_style import literal_text
     from optreserve.output.report import REPORT_NAME, build_report
 
     with literal_text():

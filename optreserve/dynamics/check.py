@@ -9,7 +9,6 @@ only when this says so for every instance.
 from __future__ import annotations
 
 import dataclasses
-
 from dataclasses import dataclass
 
 import numpy as np

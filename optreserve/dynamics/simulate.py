@@ -51,7 +51,7 @@ from optreserve.dynamics.system import (
 )
 from optreserve.errors import CaseError, OptreserveError, Problem
 from optreserve.output.folder import allocation_problems, read_allocation  # noqa: F401
-from optreserve.output.plotstyle import plot_or_warn
+from optreserve.output.plot_style import plot_or_warn
 from optreserve.output.results import CAUTION, write_table
 from optreserve.output.staging import staged_output
 from optreserve.verify.settle import settle_instances

@@ -15,8 +15,15 @@ import numpy as np
 
 from optreserve.case.data import Case
 from optreserve.model.flows import _rows_dispatch, _rows_flows, _rows_flows_dispatch
-from optreserve.model.horizon import (ELASTIC_PENALTY, Events, Horizon, _removed, direction_key,
-                                      prepare, responds)
+from optreserve.model.horizon import (
+    ELASTIC_PENALTY,
+    Events,
+    Horizon,
+    _removed,
+    direction_key,
+    prepare,
+    responds,
+)
 from optreserve.model.nadir import _rows_nadir
 from optreserve.model.program import LinearProgram
 

@@ -5,8 +5,13 @@ from __future__ import annotations
 
 import numpy as np
 
-from optreserve.model.horizon import (ELASTIC_PENALTY, Horizon, _removed, direction_key,
-                                      effective_factor)
+from optreserve.model.horizon import (
+    ELASTIC_PENALTY,
+    Horizon,
+    _removed,
+    direction_key,
+    effective_factor,
+)
 
 
 def flow_weights(hz: Horizon, inst=None):

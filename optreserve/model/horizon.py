@@ -10,8 +10,8 @@ import numpy as np
 import scipy.sparse as sp
 
 from optreserve.case.data import Case
-from optreserve.case.products import ENERGY_COLS, energy_caps, trip_members, unit_flags
 from optreserve.case.nodal import area_level
+from optreserve.case.products import ENERGY_COLS, energy_caps, trip_members, unit_flags
 from optreserve.network.ptdf import ptdf
 
 

@@ -4,6 +4,11 @@ variables at the top of templates/report.css; change both together.
 
 Figures use matplotlib's Figure API (no pyplot: no GUI backend, no global state); every plot
 draws inside rc_context(RC), so nothing leaks into the caller's matplotlib settings.
+
+Plots never take the results with them: case names and ids go into titles, labels and legends
+as the user wrote them (LITERAL_TEXT: no $...$ math markup, no TeX, so "Study $\\foo$" is
+drawn as typed), and `plot_or_warn` turns a figure that fails into a warning, so the tables
+of a run are still written (sweep, simulate, solve --report).
 """
 
 from __future__ import annotations
@@ -13,7 +18,10 @@ import html
 import io
 import math
 import re
-from collections.abc import Callable
+import sys
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -48,9 +56,38 @@ RC = {
     "axes.grid": True, "grid.color": "#ebe6dc", "grid.linewidth": 0.7,
     "axes.axisbelow": True, "figure.facecolor": CARD, "axes.facecolor": CARD,
     "legend.frameon": False, "legend.fontsize": 8.5, "savefig.facecolor": CARD,
-    # ids and labels come from the user's files: a "$" is text, not the start of mathtext
-    "text.parse_math": False,
 }
+# ids and labels come from the user's files: a "$" is text, not the start of mathtext
+LITERAL_TEXT = {"text.parse_math": False, "text.usetex": False}
+RC.update(LITERAL_TEXT)
+
+
+@contextmanager
+def literal_text() -> Iterator[None]:
+    """matplotlib settings under which every text is shown literally."""
+    import matplotlib
+
+    with matplotlib.rc_context(LITERAL_TEXT):
+        yield
+
+
+def plot_or_warn(draw: Callable[[], object], path: str | Path,
+                 warnings: list | None = None) -> bool:
+    """Run draw() (which writes `path`) with literal text. On failure remove any partial file
+    and warn: appended to `warnings` when given, else printed to stderr. True when drawn
+    (draw() returning False means there was nothing to draw)."""
+    try:
+        with literal_text():
+            drawn = draw()
+        return drawn is not False
+    except Exception as exc:  # a plot must never cost the tables
+        Path(path).unlink(missing_ok=True)
+        text = f"{Path(path).name} not drawn: {type(exc).__name__}: {exc}".splitlines()[0]
+        if warnings is not None:
+            warnings.append(text)
+        else:
+            print(f"warning: {text}", file=sys.stderr)
+        return False
 
 
 def styled(name: str) -> Callable:

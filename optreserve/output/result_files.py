@@ -17,8 +17,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from optreserve.output.cells import unescape
 from optreserve.errors import CaseError, Problem
+from optreserve.output.cells import unescape
 from optreserve.output.schemas import RETUNE_NUMBERS, SUMMARY_NUMBERS, Column
 
 _TRUE = {"true", "1", "yes", "y", "t"}

@@ -9,8 +9,14 @@ from optreserve.case.data import Case
 from optreserve.case.nodal import area_level
 from optreserve.errors import VerificationError
 from optreserve.model.build import ModelInfo
-from optreserve.model.horizon import (Horizon, direction_key, effective_factor,
-                                      out_pairs, responds, responds_in)
+from optreserve.model.horizon import (
+    Horizon,
+    direction_key,
+    effective_factor,
+    out_pairs,
+    responds,
+    responds_in,
+)
 from optreserve.model.program import LinearProgram
 from optreserve.output.results import Result
 from optreserve.solver.backends import Outcome

@@ -30,7 +30,7 @@ import pandas as pd
 
 from optreserve.case.data import Case
 from optreserve.errors import InfeasibleError, OptreserveError
-from optreserve.output.plotstyle import plot_or_warn
+from optreserve.output.plot_style import plot_or_warn
 from optreserve.output.results import CAUTION, write_table
 from optreserve.output.staging import staged_output
 
