@@ -166,8 +166,9 @@ def cmd_simulate(args) -> int:
 def _add_simulate_parser(sub) -> None:
     r = sub.add_parser("simulate", help="simulate frequency and tie flows after each event",
                        description="Time-domain check of an allocation: per-area swing "
-                                   "equations, a first-order governor lag per unit with dead "
-                                   "band and headroom limits, tie-line synchronising power. "
+                                   "equations, each unit's governor model (lag, reheat, hydro "
+                                   "or inverter) with its dead band and response limit, "
+                                   "tie-line synchronising power and transient tie loading. "
                                    "Writes per event a time series and a plot, and "
                                    "simulation_summary.csv (nadir, RoCoF, settled frequency, "
                                    "limits).")
