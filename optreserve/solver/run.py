@@ -163,8 +163,9 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         from optreserve.solver.incremental import attach_incremental
 
         with clock("incremental_prices"):  # the MILP re-solves at the grown event sizes
+            # at the nadir rows the solve ended with (loosened scale, simulation cuts)
             attach_incremental(result, case, hz, info, out.x, price_step, time_limit,
-                               nadir["scale"])
+                               nadir["guide"])
     result.timings_s.update(read=case.read_time_s, build=t_build, solve=t_solve, **clock,
                             write=0.0)
     close_total(result.timings_s, time.perf_counter() - t_start + case.read_time_s)
