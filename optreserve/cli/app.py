@@ -44,7 +44,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="write into a non-empty --out folder (only optreserve's files change)")
     s.add_argument("--engine", choices=["auto", "pyomo", "highspy"], default="auto",
                    help="how HiGHS receives the model: Pyomo model, bulk highspy load, or auto "
-                        "(Pyomo for small models); default auto")
+                        "(the bulk load); default auto")
     s.add_argument("--time-limit", type=float, metavar="S", help="solver time limit, seconds "
                    "(overrides case.toml)")
     s.add_argument("--mip-gap", type=float, metavar="G", help="relative MIP gap (overrides "

@@ -34,7 +34,7 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     """Least-cost droop and headroom allocation meeting every event's limits.
 
     engine: "pyomo" (Pyomo model on Pyomo's HiGHS interface), "highspy" (bulk load), or
-    "auto" (Pyomo for small models, bulk above backends.AUTO_BULK_NONZEROS nonzeros).
+    "auto" (the bulk load; see backends.solve_program).
     extend: called on every model built (lp, info) to add blocks or change the objective
       (studies such as retune proposals); the result's cost is always the headroom cost.
     hz: the stacked case (model.prepare), e.g. with extra event instances.
