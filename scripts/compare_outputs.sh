@@ -12,6 +12,7 @@ trap 'git -C "$root" worktree remove --force "$work/old" >/dev/null 2>&1 || true
 git -C "$root" worktree add -q --detach "$work/old" "$old_rev"
 run() {  # $1 = source tree, $2 = output folder
   local src="$1" out="$2"
+  cd "$work"  # python -m puts the current folder first on sys.path: run from a neutral one
   PYTHONPATH="$src" "$py" -m optreserve generate --units 60 --periods 8 --seed 3 --out "$out/gen-case" --quiet
   PYTHONPATH="$src" "$py" -m optreserve solve "$root/instances/demo-tri-valley" --out "$out/demo" --quiet
   PYTHONPATH="$src" "$py" -m optreserve solve "$out/gen-case" --out "$out/gen" --quiet

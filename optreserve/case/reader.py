@@ -205,6 +205,36 @@ def _read_csv(path: Path, label: str, col: _Collector) -> _Table | None:
                   np.array(lines, dtype=np.int64))
 
 
+def _series_file(csv_path: Path, col: _Collector, lab):
+    """NAME_by_period.csv, or NAME_by_period.parquet in its place: (path, reader) or
+    (None, None) when neither is there; both at once is an error."""
+    pq = csv_path.with_suffix(".parquet")
+    if csv_path.is_file() and pq.is_file():
+        col.error(lab(pq.name), f"given together with {csv_path.name}: keep one of them")
+        return None, None
+    if pq.is_file():
+        return pq, _read_parquet
+    return (csv_path, _read_csv) if csv_path.is_file() else (None, None)
+
+
+def _read_parquet(path: Path, label: str, col: _Collector) -> _Table | None:
+    """A Parquet time series as the CSV reader's _Table (every cell as text), so that each
+    check and message is the CSV one. Rows are numbered as in the same table written as CSV
+    (header row 1, first record row 2)."""
+    try:
+        df = pd.read_parquet(path)
+    except Exception as exc:  # pyarrow raises several kinds for a damaged or foreign file
+        col.error(label, f"cannot be read as Parquet ({type(exc).__name__}: {exc})"[:300])
+        return None
+    header = [str(c) for c in df.columns]
+    columns = []
+    for c in df.columns:
+        text = df[c].astype(str).to_numpy(dtype=object)
+        text[df[c].isna().to_numpy()] = ""
+        columns.append(_strip(text))
+    return _Table(label, 1, header, columns, np.arange(len(df), dtype=np.int64) + 2)
+
+
 def _strip(a: np.ndarray) -> np.ndarray:
     if any(x != x.strip() for x in a):
         return np.array([x.strip() for x in a], dtype=object)
@@ -457,8 +487,9 @@ def load_case(path: str | Path) -> Case:
     series_raw: dict[str, pd.DataFrame] = {}
     for key, (idc, cols) in SERIES.items():
         p = folder / f"{key}_by_period.csv"
-        if p.is_file():
-            t = _read_csv(p, lab(p.name), col)
+        p, read = _series_file(p, col, lab)
+        if p is not None:
+            t = read(p, lab(p.name), col)
             if t is not None:
                 over = [Col(c.name, c.kind, False,
                             math.nan if c.kind == "float" else None, c.check)
@@ -466,6 +497,7 @@ def load_case(path: str | Path) -> Case:
                 df = _typed_table(t, [Col("period", "text", True), Col(idc, "text", True)]
                                   + over, col, unknown_hint=SERIES_HINT[key])
                 if df is not None:
+                    df.attrs["file"] = str(p)  # messages name the file actually read
                     series_raw[key] = df
     for extra in sorted(folder.glob("*_by_period.csv")):
         if extra.name.split("_by_period")[0] not in SERIES:
@@ -627,7 +659,7 @@ def _check_series(folder, series_raw, units, areas, links, events, settings, col
     bad = False
     for key, df in series_raw.items():
         idc = SERIES[key][0]
-        file = str(folder / f"{key}_by_period.csv")
+        file = df.attrs.get("file", str(folder / f"{key}_by_period.csv"))
         per_arr = df["period"].to_numpy(object)
         id_arr = df[idc].to_numpy(object)
         line_arr = df["_line"].to_numpy()
@@ -699,7 +731,8 @@ def _check_series(folder, series_raw, units, areas, links, events, settings, col
         hours = [period_hours if period_hours else 1.0] * len(order)
     # value checks on the combined (static + override) data
     if "units" in series_raw:
-        _check_unit_series(series_raw["units"], units, str(folder / "units_by_period.csv"), col)
+        _check_unit_series(series_raw["units"], units, series_raw["units"].attrs.get(
+            "file", str(folder / "units_by_period.csv")), col)
     out = {}
     for key, df in series_raw.items():
         idc = SERIES[key][0]

@@ -80,11 +80,16 @@ def cmd_solve(args) -> int:
         print("error: --report needs --out DIR (the report is written next to the results)",
               file=sys.stderr)
         return EXIT_INPUT
+    if getattr(args, "workers", None) is not None and args.workers < 1:
+        print("error: --workers must be at least 1", file=sys.stderr)
+        return EXIT_INPUT
     case = load_case(args.case)
     _warn(case, args.quiet)
     try:
         result = solve(case, engine=args.engine, time_limit=args.time_limit,
-                       mip_gap=args.mip_gap, relax=args.relax, verbose=args.verbose)
+                       mip_gap=args.mip_gap, relax=args.relax, verbose=args.verbose,
+                       workers=getattr(args, "workers", None),
+                       scheduler=getattr(args, "scheduler", None))
     except InfeasibleError as exc:
         if out_dir is not None and exc.diagnosis is not None:
             _write_diagnosis(exc, out_dir, args.force)
@@ -201,14 +206,17 @@ def cmd_generate(args) -> int:
     check_out(out, args.force)
     try:
         spec = Spec(units=args.units, areas=args.areas, links=args.links, periods=args.periods,
-                    events=args.events, seed=args.seed)
+                    events=args.events, seed=args.seed, days=getattr(args, "days", 1),
+                    hold_periods=getattr(args, "hold_periods", None),
+                    parquet=getattr(args, "parquet", False))
         generate(spec, out)
     except ValueError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_INPUT
     if not args.quiet:
+        days = f" x {spec.days} days" if spec.days > 1 else ""
         print(f"wrote synthetic case to {out} ({args.units} units, {args.areas} areas, "
-              f"{args.links} links, {args.periods} periods, {args.events} events, seed "
+              f"{args.links} links, {args.periods} periods{days}, {args.events} events, seed "
               f"{args.seed})")
     return EXIT_OK
 

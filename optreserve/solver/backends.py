@@ -109,7 +109,10 @@ def solve_highs(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
             np.ascontiguousarray(lp.row_hi), A.indptr.astype(np.int32),
             A.indices.astype(np.int32), np.ascontiguousarray(A.data, dtype=float), integrality]
     h.passModel(*args)
-    if start is not None and lp.is_mip and len(start) == lp.n_cols:
+    if isinstance(start, tuple) and lp.is_mip:  # a partial start: HiGHS completes the rest
+        idx, val = start
+        h.setSolution(len(idx), np.asarray(idx, np.int32), np.asarray(val, float))
+    elif start is not None and lp.is_mip and len(start) == lp.n_cols:
         # a previous allocation (e.g. the last dead-band pass) as a first incumbent
         sol = highspy.HighsSolution()
         sol.col_value = np.clip(start, lp.col_lo, lp.col_hi).tolist()

@@ -30,7 +30,9 @@ FIXED_POINT_MAX_ITER = 30
 def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
           mip_gap: float | None = None, relax: bool = False, verbose: bool = False,
           extend: Callable[[LinearProgram, ModelInfo], None] | None = None,
-          hz: Horizon | None = None) -> Result:
+          hz: Horizon | None = None, workers: int | None = None,
+          scheduler: str | None = None, blocks: bool = True, warm: Callable | None = None,
+          nadir_sim: bool = True) -> Result:
     """Least-cost droop and headroom allocation meeting every event's limits.
 
     engine: "pyomo" (Pyomo model on Pyomo's HiGHS interface), "highspy" (bulk load), or
@@ -38,7 +40,17 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     extend: called on every model built (lp, info) to add blocks or change the objective
       (studies such as retune proposals); the result's cost is always the headroom cost.
     hz: the stacked case (model.prepare), e.g. with extra event instances.
+    workers/scheduler: a separable horizon (solver/blocks.py) is solved block by block, on
+      Dask when given; blocks=False solves it whole. warm: (lp, info) -> (columns, values), a
+      partial first incumbent. nadir_sim=False skips the simulated nadir check.
     Raises InfeasibleError (with a diagnosis) when no allocation meets the limits."""
+    if blocks:
+        from optreserve.solver.blocks import separable, solve_blocks
+
+        if separable(case, extend, hz):
+            return solve_blocks(case, workers=workers, scheduler=scheduler, engine=engine,
+                                time_limit=time_limit, mip_gap=mip_gap, relax=relax,
+                                verbose=verbose)
     t_start = time.perf_counter()
     time_limit = time_limit if time_limit is not None else case.solver.time_limit_s
     mip_gap = mip_gap if mip_gap is not None else case.solver.mip_gap
@@ -72,6 +84,8 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
                 break
             opts["time_limit"] = max(left, 0.01)
         start = history[-1][2].x if history and history[-1][0].n_cols == lp.n_cols else None
+        if start is None and warm is not None and not history:
+            start = warm(lp, info)
         out = solve_program(lp, engine=engine, want_duals=not lp.is_mip, start=start, **opts)
         t_build += out.emit_time_s
         t_solve += out.solve_time_s
@@ -114,12 +128,12 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         if not _needs_fixed_point(info):
             # no row depends on the settled guess: the exact deviation is the model's own
             info.x_hat = np.where(live, exact, info.x_hat)
-            if _nadir_round(case, info, lp, out, nadir):
+            if nadir_sim and _nadir_round(case, info, lp, out, nadir):
                 continue
             break
         if np.all(np.abs(exact - info.x_hat)[live] <= FIXED_POINT_TOL_HZ) or (
                 iterations >= FIXED_POINT_MAX_ITER):
-            if _nadir_round(case, info, lp, out, nadir):
+            if nadir_sim and _nadir_round(case, info, lp, out, nadir):
                 x_hat = np.where(live & np.isfinite(exact), exact, info.x_hat)
                 continue
             break
