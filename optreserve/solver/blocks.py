@@ -77,7 +77,7 @@ def _warm_from(prev: Result | None):
     if prev is None:
         return None
     a = prev.allocation
-    N = len(prev.case.units)
+    N = int((a["period"] == a["period"].iloc[0]).sum())  # units of the first period
     droop = a["droop_pct"].to_numpy(float)[:N]  # first period: the block's droop
     gain = a["gain_mw_per_hz"].to_numpy(float)[:N]
 
@@ -103,8 +103,9 @@ def _solve_chain(cases: list[Case], kw: dict, warm: bool) -> list[Result]:
 
     out: list[Result] = []
     for c in cases:
-        out.append(solve(c, blocks=False, warm=_warm_from(out[-1] if out and warm else None),
-                         **kw))
+        r = solve(c, blocks=False, warm=_warm_from(out[-1] if out and warm else None), **kw)
+        r.case = None  # the merged result carries the whole case; a block's is not sent back
+        out.append(r)
     return out
 
 
@@ -124,7 +125,9 @@ def solve_blocks(case: Case, workers: int | None = None, scheduler: str | None =
 
     t0 = time.perf_counter()
     cases = block_cases(case)
-    n_inst = int(sum(len(c.instances()) for c in cases))
+    per = case.events["period"] if "period" in case.events.columns else None
+    fixed = 0 if per is None else int(per.isin(list(case.periods)).sum())
+    n_inst = (len(case.events) - fixed) * case.n_periods + fixed  # as case.instances() counts
     kw = dict(kw, nadir_sim=n_inst <= NADIR_SIM_MAX_INSTANCES)
     if scheduler is None and (workers is None or workers <= 1):
         results = _solve_chain(cases, kw, warm)
