@@ -27,6 +27,15 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 
+def _cpu() -> float:
+    """CPU seconds of this process and its finished children (the Dask workers)."""
+    import resource
+
+    a = resource.getrusage(resource.RUSAGE_SELF)
+    b = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return a.ru_utime + a.ru_stime + b.ru_utime + b.ru_stime
+
+
 def main() -> int:
     p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawTextHelpFormatter)
     p.add_argument("--quick", action="store_true", help="20 points instead of 200")
@@ -55,15 +64,15 @@ def main() -> int:
     serial = run_sweep(case, varies) if not args.distributed_only else None
     t_serial = time.perf_counter() - t0 if serial is not None else float("nan")
     load1 = os.getloadavg()
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), _cpu()
     dist = run_sweep(case, varies, workers=args.workers)
-    t_dist = time.perf_counter() - t0
+    t_dist, cpu_dist = time.perf_counter() - t0, _cpu() - c0
     load2 = os.getloadavg()
 
     if serial is None:
-        print(f"| points | {args.workers} workers s | per point s | statuses |")
-        print("|---|---|---|---|")
-        print(f"| {n} | {t_dist:.1f} | {t_dist / n:.2f} | "
+        print(f"| points | {args.workers} workers s | per point s | CPU s per point | statuses |")
+        print("|---|---|---|---|---|")
+        print(f"| {n} | {t_dist:.1f} | {t_dist / n:.2f} | {cpu_dist / n:.2f} | "
               f"{dict(dist['status'].value_counts())} |")
         print(json.dumps({"points": n, "workers": args.workers, "distributed_s": round(t_dist, 2),
                           "sum_of_point_solve_s_distributed": round(float(dist["solve_s"].sum()),
