@@ -109,9 +109,16 @@ def _solve_chain(cases: list[Case], kw: dict, warm: bool) -> list[Result]:
     return out
 
 
+# A worker holds its chain's cases and results until the chain ends: chains of at most this
+# many blocks keep a worker's memory flat on long horizons (a 91-day run with one chain per
+# worker peaked at 1.4 GB per worker, docs/performance.md) while keeping most warm starts.
+CHAIN_BLOCKS = 7
+
+
 def _chunks(n: int, k: int) -> list[range]:
-    """k contiguous, nearly equal ranges over n blocks (a chain per worker keeps warm starts)."""
-    k = max(1, min(k, n))
+    """Contiguous, nearly equal ranges over n blocks: at least k (one chain per worker, which
+    keeps warm starts) and none longer than CHAIN_BLOCKS."""
+    k = max(1, min(max(k, -(-n // CHAIN_BLOCKS)), n))
     cuts = np.linspace(0, n, k + 1).round().astype(int)
     return [range(cuts[i], cuts[i + 1]) for i in range(k)]
 
@@ -139,7 +146,7 @@ def solve_blocks(case: Case, workers: int | None = None, scheduler: str | None =
 
 
 def _solve_dask(cases, kw, warm, workers, scheduler) -> list[Result]:
-    from dask.distributed import Client, LocalCluster
+    from dask.distributed import Client, LocalCluster, as_completed
 
     cluster = None
     if scheduler is None:
@@ -152,9 +159,13 @@ def _solve_dask(cases, kw, warm, workers, scheduler) -> list[Result]:
         client = Client(scheduler)
     try:
         n = len(client.scheduler_info().get("workers", {})) or int(workers or 1)
-        futures = [client.submit(_solve_chain, [cases[i] for i in r], kw, warm, pure=False)
-                   for r in _chunks(len(cases), n)]
-        return [r for f in futures for r in f.result()]
+        futures = {client.submit(_solve_chain, [cases[i] for i in r], kw, warm, pure=False): k
+                   for k, r in enumerate(_chunks(len(cases), n))}
+        done: dict[int, list[Result]] = {}
+        for f in as_completed(futures):  # fetched as they finish: workers free them at once
+            done[futures[f]] = f.result()
+            f.release()
+        return [r for k in sorted(done) for r in done[k]]
     finally:
         client.close()
         if cluster is not None:
