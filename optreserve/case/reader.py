@@ -223,7 +223,7 @@ def _read_parquet(path: Path, label: str, col: _Collector) -> _Table | None:
     (header row 1, first record row 2)."""
     try:
         df = pd.read_parquet(path)
-    except Exception as exc:  # pyarrow raises several kinds for a damaged or foreign file
+    except Exception as exc:  # noqa: BLE001 - pyarrow raises several kinds for a bad file
         col.error(label, f"cannot be read as Parquet ({type(exc).__name__}: {exc})"[:300])
         return None
     header = [str(c) for c in df.columns]
