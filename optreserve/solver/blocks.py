@@ -110,8 +110,8 @@ def _solve_chain(cases: list[Case], kw: dict, warm: bool) -> list[Result]:
 
 
 # A worker holds its chain's cases and results until the chain ends: chains of at most this
-# many blocks keep a worker's memory flat on long horizons (a 91-day run with one chain per
-# worker peaked at 1.4 GB per worker, docs/performance.md) while keeping most warm starts.
+# many blocks bound a worker's memory on long horizons (in the year run of docs/performance.md
+# the workers stayed at 280-400 MB) while keeping most warm starts.
 CHAIN_BLOCKS = 7
 
 
