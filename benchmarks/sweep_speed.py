@@ -27,12 +27,23 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 
+def _cpu() -> float:
+    """CPU seconds of this process and its finished children (the Dask workers)."""
+    import resource
+
+    a = resource.getrusage(resource.RUSAGE_SELF)
+    b = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return a.ru_utime + a.ru_stime + b.ru_utime + b.ru_stime
+
+
 def main() -> int:
     p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawTextHelpFormatter)
     p.add_argument("--quick", action="store_true", help="20 points instead of 200")
     p.add_argument("--workers", type=int, default=2)
     p.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
     p.add_argument("--save", metavar="DIR", help="also write both tables as CSV")
+    p.add_argument("--distributed-only", action="store_true",
+                   help="skip the serial run (no speed-up, no table comparison)")
     args = p.parse_args()
 
     import dask
@@ -50,14 +61,26 @@ def main() -> int:
 
     load0 = os.getloadavg()
     t0 = time.perf_counter()
-    serial = run_sweep(case, varies)
-    t_serial = time.perf_counter() - t0
+    serial = run_sweep(case, varies) if not args.distributed_only else None
+    t_serial = time.perf_counter() - t0 if serial is not None else float("nan")
     load1 = os.getloadavg()
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), _cpu()
     dist = run_sweep(case, varies, workers=args.workers)
-    t_dist = time.perf_counter() - t0
+    t_dist, cpu_dist = time.perf_counter() - t0, _cpu() - c0
     load2 = os.getloadavg()
 
+    if serial is None:
+        print(f"| points | {args.workers} workers s | per point s | CPU s per point | statuses |")
+        print("|---|---|---|---|---|")
+        print(f"| {n} | {t_dist:.1f} | {t_dist / n:.2f} | {cpu_dist / n:.2f} | "
+              f"{dict(dist['status'].value_counts())} |")
+        print(json.dumps({"points": n, "workers": args.workers, "distributed_s": round(t_dist, 2),
+                          "sum_of_point_solve_s_distributed": round(float(dist["solve_s"].sum()),
+                                                                     2),
+                          "load_average_before": [round(x, 2) for x in load0],
+                          "load_average_after": [round(x, 2) for x in load2],
+                          "optreserve_path": str(Path(optreserve.__file__).parent)}, indent=2))
+        return 0
     cols = [c for c in serial.columns if c != "solve_s"]
     equal = bool(serial[cols].equals(dist[cols]))
     if args.save:

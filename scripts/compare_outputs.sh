@@ -13,6 +13,7 @@ git -C "$root" worktree add -q --detach "$work/old" "$old_rev"
 cd "$work"  # python -m puts the current folder first on sys.path: not the tree under test
 run() {  # $1 = source tree, $2 = output folder
   local src="$1" out="$2"
+  cd "$work"  # python -m puts the current folder first on sys.path: run from a neutral one
   PYTHONPATH="$src" "$py" -m optreserve generate --units 60 --periods 8 --seed 3 --out "$out/gen-case" --quiet
   PYTHONPATH="$src" "$py" -m optreserve solve "$root/instances/demo-tri-valley" --out "$out/demo" --quiet
   PYTHONPATH="$src" "$py" -m optreserve solve "$out/gen-case" --out "$out/gen" --quiet

@@ -53,7 +53,7 @@ from optreserve.case.nodal import nodal_columns, read_nodal
 from optreserve.case.problems import MAX_PROBLEMS, _Collector
 from optreserve.case.products import check_products
 from optreserve.case.rules import fill_limits, rule_warnings
-from optreserve.case.series import SERIES, _check_series, _period_key
+from optreserve.case.series import SERIES, _check_series, _period_key, _series_file
 from optreserve.case.toml_settings import (
     _TOML_SCHEMA,
     _read_toml,
@@ -137,8 +137,9 @@ def load_case(path: str | Path) -> Case:
     series_raw: dict[str, pd.DataFrame] = {}
     for key, (idc, cols) in SERIES.items():
         p = folder / f"{key}_by_period.csv"
-        if p.is_file():
-            t = _read_csv(p, lab(p.name), col)
+        p, read = _series_file(p, col, lab)
+        if p is not None:
+            t = read(p, lab(p.name), col)
             if t is not None:
                 may_vary = series_columns(key)
                 over = [dataclasses.replace(c, required=False,
@@ -147,6 +148,7 @@ def load_case(path: str | Path) -> Case:
                 df = _typed_table(t, [Col("period", "text", True), Col(idc, "text", True)]
                                   + over, col, unknown_hint=series_hints(key))
                 if df is not None:
+                    df.attrs["file"] = str(p)  # messages name the file actually read
                     series_raw[key] = df
     for extra in sorted(folder.glob("*_by_period.csv")):
         if extra.name.split("_by_period")[0] not in SERIES:

@@ -9,13 +9,15 @@ import functools
 import itertools
 import re
 from datetime import datetime
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from optreserve.case.checks import check_reactance_spread
 from optreserve.case.columns import AREA_COLS, LINK_COLS, UNIT_COLS, series_columns, series_hints
-from optreserve.case.problems import MAX_PROBLEMS, suggest
+from optreserve.case.csvio import _read_csv, _Table
+from optreserve.case.problems import MAX_PROBLEMS, _Collector, suggest
 
 SERIES = {"units": ("unit", UNIT_COLS), "areas": ("area", AREA_COLS),
           "links": ("link", LINK_COLS)}
@@ -54,7 +56,7 @@ def _check_series(folder, series_raw, units, areas, links, events, settings, col
     bad = False
     for key, df in series_raw.items():
         idc = SERIES[key][0]
-        file = str(folder / f"{key}_by_period.csv")
+        file = df.attrs.get("file", str(folder / f"{key}_by_period.csv"))
         per_arr = df["period"].to_numpy(object)
         id_arr = df[idc].to_numpy(object)
         line_arr = df["_line"].to_numpy()
@@ -126,7 +128,8 @@ def _check_series(folder, series_raw, units, areas, links, events, settings, col
         hours = [period_hours if period_hours else 1.0] * len(order)
     # value checks on the combined (static + override) data
     if "units" in series_raw:
-        _check_unit_series(series_raw["units"], units, str(folder / "units_by_period.csv"), col)
+        _check_unit_series(series_raw["units"], units, series_raw["units"].attrs.get(
+            "file", str(folder / "units_by_period.csv")), col)
     if "links" in series_raw and "reactance_pu" in series_raw["links"].columns and len(links):
         x0 = links["reactance_pu"].to_numpy(float)
         check_reactance_spread(series_raw["links"]["reactance_pu"].to_numpy(float),
@@ -158,3 +161,33 @@ def _check_unit_series(ser, units, file, col):
                   "output_mw")
 
 
+def _series_file(csv_path: Path, col: _Collector, lab):
+    """NAME_by_period.csv, or NAME_by_period.parquet in its place: (path, reader) or
+    (None, None) when neither is there; both at once is an error."""
+    pq = csv_path.with_suffix(".parquet")
+    if csv_path.is_file() and pq.is_file():
+        col.error(lab(pq.name), f"given together with {csv_path.name}: keep one of them")
+        return None, None
+    if pq.is_file():
+        return pq, _read_parquet
+    return (csv_path, _read_csv) if csv_path.is_file() else (None, None)
+
+
+def _read_parquet(path: Path, label: str, col: _Collector) -> _Table | None:
+    """A Parquet time series as the CSV reader's _Table (every cell as text), so that each
+    check and message is the CSV one. Rows are numbered as in the same table written as CSV
+    (header row 1, first record row 2)."""
+    try:
+        df = pd.read_parquet(path)
+    except Exception as exc:  # noqa: BLE001 - pyarrow raises several kinds for a bad file
+        col.error(label, f"cannot be read as Parquet ({type(exc).__name__}: {exc})"[:300])
+        return None
+    header = [str(c) for c in df.columns]
+    columns = []
+    for c in df.columns:
+        # one text per distinct value, shared by its cells: a year of quarter-hours has ten
+        # million rows but few distinct periods, ids and values (memory, docs/performance.md)
+        codes, uniq = pd.factorize(df[c], use_na_sentinel=True)
+        words = np.append(pd.Series(uniq).astype(str).str.strip().to_numpy(dtype=object), "")
+        columns.append(words[codes])  # code -1 (missing) takes the last word, ""
+    return _Table(label, 1, header, columns, np.arange(len(df), dtype=np.int64) + 2)

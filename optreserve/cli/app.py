@@ -53,13 +53,17 @@ def build_parser() -> argparse.ArgumentParser:
                    help="write into a non-empty --out folder (only optreserve's files change)")
     s.add_argument("--engine", choices=["auto", "pyomo", "highspy"], default="auto",
                    help="how HiGHS receives the model: Pyomo model, bulk highspy load, or auto "
-                        "(Pyomo for small models); default auto")
+                        "(the bulk load); default auto")
     s.add_argument("--time-limit", type=float, metavar="S", help="solver time limit, seconds "
                    "(overrides case.toml)")
     s.add_argument("--mip-gap", type=float, metavar="G", help="relative MIP gap (overrides "
                    "case.toml)")
     s.add_argument("--relax", action="store_true", help="solve the LP relaxation (no integer "
                    "participation or droop steps)")
+    s.add_argument("--workers", type=int, metavar="N", help="solve the droop blocks of a "
+                   "separable horizon ([droop] hold_periods) on N local Dask worker processes "
+                   "(default: one after the other in this process)")
+    s.add_argument("--scheduler", metavar="ADDR", help="...or on the Dask cluster at ADDR")
     s.add_argument("--verbose", action="store_true", help="show the HiGHS log")
     s.add_argument("--quiet", action="store_true", help="print nothing on success")
     s.add_argument("--strict", action="store_true", help=STRICT_HELP)
@@ -90,6 +94,12 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--events", type=int, default=10, metavar="E", help="events, each applying "
                    "in every period (default 10)")
     g.add_argument("--seed", type=int, default=1, metavar="S", help="random seed (default 1)")
+    g.add_argument("--days", type=int, default=1, metavar="D", help="days of --periods each "
+                   "(default 1): a season and weekends shape the load from day to day")
+    g.add_argument("--hold-periods", type=int, metavar="H", help="write [droop] hold_periods "
+                   "= H (e.g. --periods: droop held per day)")
+    g.add_argument("--parquet", action="store_true", help="write the time series as "
+                   "*_by_period.parquet instead of CSV")
     g.add_argument("--out", required=True, metavar="DIR", help="folder to write the case into")
     g.add_argument("--force", action="store_true", help="write into a non-empty folder")
     g.add_argument("--quiet", action="store_true", help="print nothing on success")

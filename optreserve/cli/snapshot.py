@@ -96,13 +96,18 @@ def cmd_solve(args) -> int:
         print(f"error: --price-step must be a positive number of MW, got {step:g}",
               file=sys.stderr)
         return EXIT_INPUT
+    if getattr(args, "workers", None) is not None and args.workers < 1:
+        print("error: --workers must be at least 1", file=sys.stderr)
+        return EXIT_INPUT
     case = load_case(args.case)
     _warn(case, args.quiet, getattr(args, "strict", False))
     try:
         result = solve(case, engine=args.engine, time_limit=args.time_limit,
                        mip_gap=args.mip_gap, relax=args.relax, verbose=args.verbose,
                        incremental=not (getattr(args, "no_incremental", False) or args.relax),
-                       price_step=getattr(args, "price_step", None))
+                       price_step=getattr(args, "price_step", None),
+                       workers=getattr(args, "workers", None),
+                       scheduler=getattr(args, "scheduler", None))
     except InfeasibleError as exc:
         if out_dir is not None and exc.diagnosis is not None:
             _write_diagnosis(exc, out_dir, args.force)
@@ -262,16 +267,19 @@ def cmd_generate(args) -> int:
     check_out(out, args.force)
     try:
         spec = Spec(units=args.units, areas=args.areas, links=args.links, periods=args.periods,
-                    events=args.events, seed=args.seed)
+                    events=args.events, seed=args.seed, days=getattr(args, "days", 1),
+                    hold_periods=getattr(args, "hold_periods", None),
+                    parquet=getattr(args, "parquet", False))
         with staged_output(out, args.force, group="case") as tmp:  # all files or none
             generate(spec, tmp)
     except ValueError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_INPUT
     if not args.quiet:
+        days = f" x {plural(spec.days, 'day')}" if spec.days > 1 else ""
         print(f"wrote synthetic case to {out} ({plural(args.units, 'unit')}, "
               f"{plural(args.areas, 'area')}, {plural(args.links, 'link')}, "
-              f"{plural(args.periods, 'period')}, {plural(args.events, 'event')}, seed "
+              f"{plural(args.periods, 'period')}{days}, {plural(args.events, 'event')}, seed "
               f"{args.seed})")
     return EXIT_OK
 

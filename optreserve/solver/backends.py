@@ -14,9 +14,10 @@ import numpy as np
 from optreserve import interrupt, progress
 from optreserve.model.program import LinearProgram
 
-# Above this many nonzeros "auto" loads HiGHS in bulk: per-expression Pyomo machinery, not the
-# solver, dominates there (docs/performance.md).
-AUTO_BULK_NONZEROS = 20_000
+# "auto" loads HiGHS in bulk at every size: both emitters hand HiGHS the same program
+# (tests/test_solve_reference.py checks they reach the same optimum), and on small cases
+# importing Pyomo alone (about 0.9 s, most of it scipy.stats) cost more than the whole demo
+# solve (docs/performance.md, "Snapshot latency"). Pyomo stays available with engine="pyomo".
 # HiGHS runs single-threaded: measured on these models (docs/performance.md) its parallel
 # search gains nothing while its helper thread takes a second core; studies run points in
 # parallel instead (sweep.py). OPTRESERVE_HIGHS_THREADS overrides (0 lets HiGHS choose).
@@ -64,6 +65,12 @@ def new_highs():
     return h
 
 
+# HiGHS's root reduced-cost heuristic spent about half of the demo MILP's time in sub-MIPs
+# without improving the incumbent; off, the same optimum is found in about half the CPU time
+# (demo) and 8 % less on a 300-unit day (docs/performance.md, "HiGHS options").
+HIGHS_MIP_OPTIONS = {"mip_heuristic_run_root_reduced_cost": False}
+
+
 def _options(h, time_limit, mip_gap, verbose, log_file=None):
     # the log always goes to a file so that HiGHS's warnings can be passed on to the user;
     # it reaches the console only with --verbose
@@ -77,6 +84,8 @@ def _options(h, time_limit, mip_gap, verbose, log_file=None):
         h.setOptionValue("time_limit", float(time_limit))
     if mip_gap is not None:
         h.setOptionValue("mip_rel_gap", float(mip_gap))
+    for k, v in HIGHS_MIP_OPTIONS.items():
+        h.setOptionValue(k, v)
 
 
 def solve_highs(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
@@ -107,7 +116,10 @@ def _solve_highs(h, lp, log, t0, time_limit, mip_gap, verbose, want_duals, start
             np.ascontiguousarray(lp.row_hi), A.indptr.astype(np.int32),
             A.indices.astype(np.int32), np.ascontiguousarray(A.data, dtype=float), integrality]
     h.passModel(*args)
-    if start is not None and lp.is_mip and len(start) == lp.n_cols:
+    if isinstance(start, tuple) and lp.is_mip:  # a partial start: HiGHS completes the rest
+        idx, val = start
+        h.setSolution(len(idx), np.asarray(idx, np.int32), np.asarray(val, float))
+    elif start is not None and lp.is_mip and len(start) == lp.n_cols:
         # a previous allocation (e.g. the last dead-band pass) as a first incumbent
         sol = highspy.HighsSolution()
         sol.col_value = np.clip(start, lp.col_lo, lp.col_hi).tolist()
@@ -272,7 +284,7 @@ def solve_pyomo(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
         kwargs["rel_gap"] = float(mip_gap)
     log = _new_log()
     kwargs["solver_options"] = {"log_file": log.name, "random_seed": 0,
-                                "threads": HIGHS_THREADS}
+                                "threads": HIGHS_THREADS, **HIGHS_MIP_OPTIONS}
     progress.step("HiGHS via Pyomo: solving" + (" (mixed-integer)" if lp.is_mip else ""),
                   log.name)
     t1 = time.perf_counter()
@@ -336,9 +348,7 @@ def to_pyomo(lp: LinearProgram):
 
 
 def solve_program(lp: LinearProgram, engine="auto", start=None, **kw) -> Outcome:
-    if engine == "auto":
-        engine = "highspy" if lp.A.nnz > AUTO_BULK_NONZEROS else "pyomo"
-    if engine == "highspy":
+    if engine in ("auto", "highspy"):
         return solve_highs(lp, start=start, **kw)
     if engine == "pyomo":
         return solve_pyomo(lp, **kw)

@@ -33,22 +33,35 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
           mip_gap: float | None = None, relax: bool = False, verbose: bool = False,
           extend: Callable[[LinearProgram, ModelInfo], None] | None = None,
           hz: Horizon | None = None, incremental: bool = False,
-          price_step: float | None = None) -> Result:
+          price_step: float | None = None, workers: int | None = None,
+          scheduler: str | None = None, blocks: bool = True, warm: Callable | None = None,
+          nadir_sim: bool = True) -> Result:
     """Least-cost droop and headroom allocation meeting every event's limits.
 
     engine: "pyomo" (Pyomo model on Pyomo's HiGHS interface), "highspy" (bulk load), or
-    "auto" (Pyomo for small models, bulk above backends.AUTO_BULK_NONZEROS nonzeros).
+    "auto" (the bulk load; see backends.solve_program).
     extend: called on every model built (lp, info) to add blocks or change the objective
       (studies such as retune proposals); the result's cost is always the headroom cost.
     hz: the stacked case (model.prepare), e.g. with extra event instances.
     incremental: also re-solve once per event instance (and own-reserve requirement) grown
       by price_step MW (default max(1 MW, 1 %)) for incremental prices (solver/incremental.py;
       not with extend, whose objective is not the cost).
+    workers/scheduler: a separable horizon (solver/blocks.py) is solved block by block, on
+      Dask when given; blocks=False solves it whole. warm: (lp, info) -> (columns, values), a
+      partial first incumbent. nadir_sim=False skips the simulated nadir check.
     Raises InfeasibleError (with a diagnosis) when no allocation meets the limits."""
     if case.is_nodal:  # buses.csv: lazy sparse flow rows (solver/rowgen.py)
         from optreserve.solver.rowgen import solve_nodal
 
         return solve_nodal(case, engine, time_limit, mip_gap, relax, verbose, extend, hz)
+    if blocks:
+        from optreserve.solver.blocks import separable, solve_blocks
+
+        if separable(case, extend, hz):
+            return solve_blocks(case, workers=workers, scheduler=scheduler, engine=engine,
+                                time_limit=time_limit, mip_gap=mip_gap, relax=relax,
+                                verbose=verbose, incremental=incremental,
+                                price_step=price_step)
     t_start = time.perf_counter()
     clock = Clock()  # verify, nadir_check, prices: timings_s keys beside build and solve
     time_limit = time_limit if time_limit is not None else case.solver.time_limit_s
@@ -84,6 +97,8 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
                 break
             opts["time_limit"] = max(left, 0.01)
         start = history[-1][2].x if history and history[-1][0].n_cols == lp.n_cols else None
+        if start is None and warm is not None and not history:
+            start = warm(lp, info)
         out = solve_program(lp, engine=engine, want_duals=not lp.is_mip, start=start, **opts)
         t_build += out.emit_time_s
         t_solve += out.solve_time_s
@@ -131,12 +146,12 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
         if not _needs_fixed_point(info):
             # no row depends on the settled guess: the exact deviation is the model's own
             info.x_hat = np.where(live, exact, info.x_hat)
-            if clock.run("nadir_check", _nadir_round, case, info, lp, out, nadir):
+            if nadir_sim and clock.run("nadir_check", _nadir_round, case, info, lp, out, nadir):
                 continue
             break
         if np.all(np.abs(exact - info.x_hat)[live] <= FIXED_POINT_TOL_HZ) or (
                 iterations >= FIXED_POINT_MAX_ITER):
-            if clock.run("nadir_check", _nadir_round, case, info, lp, out, nadir):
+            if nadir_sim and clock.run("nadir_check", _nadir_round, case, info, lp, out, nadir):
                 x_hat = np.where(live & np.isfinite(exact), exact, info.x_hat)
                 continue
             break

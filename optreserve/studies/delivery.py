@@ -23,6 +23,7 @@ import signal
 import time
 from collections import deque
 from collections.abc import Callable
+from contextlib import contextmanager
 
 from optreserve import interrupt
 
@@ -49,10 +50,10 @@ def _on_worker(fn, shared, index, *args) -> dict:
     return row
 
 
-def run_dask(fn, shared, tasks, workers, scheduler, bar, point_timeout_s: float | None,
-             lost_row: Callable[[int, tuple, str], dict]) -> list[dict]:
-    """fn(shared, index, *args) for every (index, args) task on a LocalCluster of `workers`
-    processes (or the cluster at `scheduler`); one row per task, in completion order."""
+@contextmanager
+def study_client(workers: int | None, scheduler: str | None):
+    """(client, cluster or None): our LocalCluster of `workers` processes, on 127.0.0.1 only
+    and serving no web pages, or a client of the cluster at `scheduler`; closed on exit."""
     import dask
     from dask.distributed import Client, LocalCluster
 
@@ -71,8 +72,7 @@ def run_dask(fn, shared, tasks, workers, scheduler, bar, point_timeout_s: float 
                     client = Client(cluster)
                 else:
                     client = Client(scheduler)
-            return _Delivery(client, cluster, fn, shared, bar, point_timeout_s,
-                             lost_row).run(tasks)
+            yield client, cluster
         except KeyboardInterrupt:  # Ctrl-C, SIGTERM: close quietly (no comm tracebacks)
             logging.getLogger("distributed").setLevel(logging.CRITICAL)
             raise
@@ -81,6 +81,15 @@ def run_dask(fn, shared, tasks, workers, scheduler, bar, point_timeout_s: float 
                 client.close()
             if cluster is not None:
                 cluster.close()
+
+
+def run_dask(fn, shared, tasks, workers, scheduler, bar, point_timeout_s: float | None,
+             lost_row: Callable[[int, tuple, str], dict]) -> list[dict]:
+    """fn(shared, index, *args) for every (index, args) task on a LocalCluster of `workers`
+    processes (or the cluster at `scheduler`); one row per task, in completion order."""
+    with study_client(workers, scheduler) as (client, cluster):
+        return _Delivery(client, cluster, fn, shared, bar, point_timeout_s,
+                         lost_row).run(tasks)
 
 
 class _Delivery:

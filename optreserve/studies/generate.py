@@ -3,6 +3,20 @@
 Mixed technologies and sizes, a daily load shape, merit-order outputs per period, a meshed
 area graph, discrete droop steps 2-5 % by 0.5 %. Pre-event link flows come from a DC load
 flow of each period's area balance; link limits leave room for the largest events.
+
+Event sizes grow with the system: besides the largest units' trips, the load steps are at
+least a reference incident of REFERENCE_SHARE of the peak load, capped at REFERENCE_CAP_MW.
+Figures: the Continental European reference incident is 3000 MW each direction (EU 2017/1485
+Art. 153(2)(b)(i)) for a peak load of roughly 400-450 GW, about 0.7 %; the Nordic dimensioning
+incident of about 1450 MW is some 2 % of a peak near 70 GW, Great Britain's 1320 MW (later
+1800 MW) some 2.5-3 % of about 50 GW (these three from memory). 2 % up to the CE cap puts a
+300-unit fleet (peak about 60 GW) between the Nordic and CE cases, and a 2000-unit fleet at the
+CE figure. Load self-regulation is 1-2 % of load per Hz per area (CE planning assumption
+1 %/Hz, from memory; textbooks 1-2 %), so at 0.2 Hz it covers 0.2-0.4 % of the load: well short
+of either reference, so every size needs reserve from providers.
+`days` > 1 repeats the daily shape with a season (winter peak) and lighter weekends;
+`hold_periods` writes `[droop] hold_periods` (e.g. the periods of a day: droop per day);
+`parquet` writes the time series as *_by_period.parquet (a year is ten million unit rows).
 """
 
 from __future__ import annotations
@@ -27,6 +41,8 @@ TECH = {
     "wind": (0.12, (50, 300), 1, (0, 0), (4.0, 5.0), (0,), False, 0.0, 1),
 }
 STEPS = [2.0, 2.5, 3.0, 3.5, 4.0, 4.5, 5.0]
+REFERENCE_SHARE = 0.02  # reference incident as a share of the peak load (see module doc)
+REFERENCE_CAP_MW = 3000.0  # CE reference incident, EU 2017/1485 Art. 153(2)(b)(i)
 
 
 @dataclass(frozen=True)
@@ -37,6 +53,19 @@ class Spec:
     periods: int = 96
     events: int = 10
     seed: int = 1
+    days: int = 1  # the daily shape repeated (96 quarter-hours a day by default)
+    hold_periods: int | None = None  # [droop] hold_periods; None: droop fixed over the horizon
+    parquet: bool = False  # time series as Parquet instead of CSV
+
+
+def day_scale(days: int) -> np.ndarray:
+    """Per-day load factor relative to day one (a Monday in June): a winter peak of about
+    +/-6 % over the year and weekends 6 % lighter (common practice for a load profile)."""
+    d = np.arange(days)
+    season = 1.0 + 0.06 * np.cos(2 * np.pi * (d + 152 - 15) / 365.0)
+    weekend = np.where(d % 7 >= 5, 0.94, 1.0)
+    f = season * weekend
+    return f / f[0]
 
 
 def daily_shape(T: int) -> np.ndarray:
@@ -69,9 +98,10 @@ def _area_graph(rng, A: int, L: int) -> list[tuple[int, int]]:
 def generate(spec: Spec, out: str | Path) -> Path:
     """Write a case folder for the spec; identical files for an identical spec."""
     rng = np.random.default_rng(spec.seed)
-    N, A, T = spec.units, spec.areas, spec.periods
-    if min(N, A, T, spec.events) < 1:
-        raise ValueError("units, areas, periods and events must be at least 1")
+    N, A, T_day = spec.units, spec.areas, spec.periods
+    if min(N, A, T_day, spec.events, spec.days) < 1:
+        raise ValueError("units, areas, periods, events and days must be at least 1")
+    T = T_day * spec.days
     names = list(TECH)
     share = np.array([TECH[k][0] for k in names])
     tech = rng.choice(len(names), size=N, p=share / share.sum())
@@ -99,10 +129,14 @@ def generate(spec: Spec, out: str | Path) -> Path:
     # loads: each area a share of the system; peak at 78 % of dispatchable capacity
     firm = cap[~is_batt].sum()
     area_share = rng.dirichlet(np.full(A, 4.0))
-    shape = daily_shape(T)
-    sys_load = 0.78 * firm * shape / shape.max()
-    wind_cf = np.clip(0.35 + 0.15 * np.sin(2 * np.pi * (np.arange(T) / T + rng.uniform())) +
+    day_shape = daily_shape(T_day)
+    shape = np.tile(day_shape, spec.days) * np.repeat(day_scale(spec.days), T_day)
+    sys_load = 0.78 * firm * shape / day_shape.max()
+    wind_cf = np.clip(0.35 + 0.15 * np.sin(2 * np.pi * (np.arange(T) / T_day + rng.uniform())) +
                       rng.normal(0, 0.03, T), 0.05, 0.9)
+    if spec.days > 1:  # weather: windy and calm spells of a few days
+        wind_cf = np.clip(wind_cf + np.repeat(rng.normal(0, 0.12, spec.days), T_day), 0.05, 0.9)
+    incident = min(REFERENCE_CAP_MW, REFERENCE_SHARE * float(sys_load.max()))
     load = sys_load[:, None] * area_share[None, :]  # (T, A)
 
     # merit-order commitment each period: wind at its capacity factor and baseload at 90 %
@@ -112,6 +146,7 @@ def generate(spec: Spec, out: str | Path) -> Path:
     n_trip_units = max(1, spec.events - 2) if spec.events >= 3 else spec.events
     reserve_need = 1.5 * 0.9 * np.sort(np.where(is_batt | is_wind, 0.0, cap))[::-1][
         :n_trip_units].max(initial=0.0)
+    reserve_need = max(reserve_need, 1.5 * incident)
     output = np.zeros((T, N))
     online = np.zeros((T, N), dtype=bool)
     is_base = np.array([k == "nuclear" for k in kind])
@@ -162,11 +197,11 @@ def generate(spec: Spec, out: str | Path) -> Path:
     if n_ev - n_trip >= 1:
         a = int(np.argmax(area_share))
         ev_rows.append({"event": f"load_rise_{aid[a]}", "kind": "load_step", "unit": "",
-                        "area": aid[a], "size_mw": round(0.6 * largest, 0)})
+                        "area": aid[a], "size_mw": round(max(0.6 * largest, incident), 0)})
     if n_ev - n_trip >= 2:
         a = int(np.argmin(area_share))
         ev_rows.append({"event": f"load_drop_{aid[a]}", "kind": "load_step", "unit": "",
-                        "area": aid[a], "size_mw": -round(0.5 * largest, 0)})
+                        "area": aid[a], "size_mw": -round(max(0.5 * largest, incident), 0)})
 
     # unit table: static columns carry the first period; time series override per period
     now = np.where(provides, np.where(rng.uniform(size=N) < 0.5, 4.0, 5.0), 5.0)
@@ -185,14 +220,14 @@ def generate(spec: Spec, out: str | Path) -> Path:
     areas = pd.DataFrame({"area": aid, "load_mw": load[0].round(1),
                           "load_damping_pct_per_hz": rng.uniform(1.0, 2.0, A).round(2),
                           "min_own_reserve_mw": np.zeros(A)})
-    event_size = max(largest, 0.6 * largest)
+    event_size = max(largest, incident)
     lim = (np.abs(flows).max(axis=0) + 0.5 * event_size).round(-1) + 50
     links = pd.DataFrame({"link": lid, "from_area": [aid[a] for a in f_idx],
                           "to_area": [aid[b] for b in t_idx], "reactance_pu": x,
                           "limit_mw": lim, "flow_mw": flows[0].round(1)})
 
     start = pd.Timestamp("2026-06-01T00:00")
-    step = pd.Timedelta(hours=24.0 / T)
+    step = pd.Timedelta(hours=24.0 / T_day)
     labels = [(start + k * step).strftime("%Y-%m-%dT%H:%M") for k in range(T)]
     ub = pd.DataFrame({
         "period": np.repeat(labels, N), "unit": np.tile(ids, T),
@@ -200,8 +235,8 @@ def generate(spec: Spec, out: str | Path) -> Path:
         "min_output_mw": np.where(online, min_out[None, :], np.minimum(min_out, 0.0)[None, :])
         .reshape(-1),
         "provides": np.where(online & provides[None, :], "true", "false").reshape(-1),
-        "price_up_per_mw_h": (price_up[None, :] * (0.85 + 0.3 * shape / shape.max())[:, None])
-        .round(2).reshape(-1),
+        "price_up_per_mw_h": (price_up[None, :] * (0.85 + 0.3 * shape / day_shape.max())
+                              [:, None]).round(2).reshape(-1),
     })
     ab = pd.DataFrame({"period": np.repeat(labels, A), "area": np.tile(aid, T),
                        "load_mw": load.round(1).reshape(-1)})
@@ -210,11 +245,13 @@ def generate(spec: Spec, out: str | Path) -> Path:
 
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
+    what = "day" if spec.days == 1 else f"{spec.days} days"
+    hold = "" if spec.hold_periods is None else f"hold_periods = {int(spec.hold_periods)}\n"
     (out / "case.toml").write_text(
-        f'name = "synthetic day: {N} units, {A} areas, {len(lid)} links, {T} periods, '
+        f'name = "synthetic {what}: {N} units, {A} areas, {len(lid)} links, {T} periods, '
         f'{n_ev} events, seed {spec.seed}"\n'
         "nominal_frequency_hz = 50.0\n\n[limits]\nmax_settled_deviation_hz = 0.2\n"
-        "full_activation_deviation_hz = 0.2\n\n[droop]\n"
+        f"full_activation_deviation_hz = 0.2\n\n[droop]\n{hold}"
         f"steps_pct = [{', '.join(f'{s:.1f}' for s in STEPS)}]\n\n"
         "[solver]\nmip_gap = 1e-3\ntime_limit_s = 120\n")
     kw = dict(index=False, lineterminator="\n")
@@ -223,7 +260,9 @@ def generate(spec: Spec, out: str | Path) -> Path:
     links.to_csv(out / "links.csv", **kw)
     pd.DataFrame(ev_rows, columns=["event", "kind", "unit", "area", "size_mw"]).to_csv(
         out / "events.csv", **kw)
-    ub.to_csv(out / "units_by_period.csv", **kw)
-    ab.to_csv(out / "areas_by_period.csv", **kw)
-    lb.to_csv(out / "links_by_period.csv", **kw)
+    for name, df in (("units", ub), ("areas", ab), ("links", lb)):
+        if spec.parquet:
+            df.to_parquet(out / f"{name}_by_period.parquet", index=False)
+        else:
+            df.to_csv(out / f"{name}_by_period.csv", **kw)
     return out
