@@ -17,7 +17,7 @@ from scipy.integrate import solve_ivp
 import optreserve
 from optreserve import cli
 from optreserve.errors import InfeasibleError
-from optreserve.solver import run
+from optreserve.solver import nadir_loop, run
 
 F_N = 50.0
 
@@ -195,7 +195,7 @@ def test_exit_3_only_when_every_provider_at_its_most_fails(case_dir, capsys):
 def test_unconfirmed_is_its_own_status_and_exit_6(case_dir, monkeypatch, capsys):
     """With no rounds of cuts allowed the weak-tie case cannot be confirmed: the allocation is
     written but marked nadir_unconfirmed, exit code 6, the worst dip printed."""
-    monkeypatch.setattr(run, "NADIR_ROUNDS", 0)
+    monkeypatch.setattr(nadir_loop, "NADIR_ROUNDS", 0)  # the nadir loop (solver/nadir_loop.py)
     folder = _weak_tie(case_dir())
     res = run.solve(optreserve.load_case(folder))
     assert res.status == "nadir_unconfirmed" and res.nadir_check["confirmed"] is False

@@ -191,7 +191,7 @@ def check_nadir_inertia(case: Case, col: _Collector) -> None:
     """The nadir check of `solve` simulates every event with its areas' own swing equations
     (dynamics/simulate.py): each area needs online inertia after the event. The same test,
     with the same message, before anything is solved (so `check` says it too)."""
-    from optreserve.solver.run import NADIR_SIM_MAX_INSTANCES
+    from optreserve.solver.nadir_loop import NADIR_SIM_MAX_INSTANCES
 
     u = case.units
     H = np.nan_to_num(u["inertia_s"].to_numpy(float)) * u["capacity_mw"].to_numpy(float)

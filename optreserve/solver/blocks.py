@@ -127,7 +127,7 @@ def solve_blocks(case: Case, workers: int | None = None, scheduler: str | None =
     """Solve a separable horizon block by block and merge the results (see module doc).
     workers/scheduler: None/None solves in this process; otherwise a Dask LocalCluster of
     `workers` processes or the cluster at `scheduler`, one chain of blocks per worker."""
-    from optreserve.solver.run import NADIR_SIM_MAX_INSTANCES
+    from optreserve.solver.nadir_loop import NADIR_SIM_MAX_INSTANCES
 
     t0 = time.perf_counter()
     cases = block_cases(case)

@@ -30,9 +30,9 @@ from optreserve.model.build import build_model
 from optreserve.model.horizon import prepare
 from optreserve.model.nodal_flows import NodalFlowRows
 from optreserve.solver.backends import solve_program
+from optreserve.solver.nadir_loop import _nadir_round, _nadir_state
 from optreserve.solver.prices import _attach_prices
 from optreserve.solver.readback import AGREE_MW, _make_result, exact_points
-from optreserve.solver.run import _nadir_round, _nadir_state
 from optreserve.verify.nodal import interchange, monitored, nodal_flows_after
 
 # Rows are added for flows above (1 - ROWGEN_MARGIN) of their limit: the nearly binding
