@@ -7,7 +7,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from optreserve.cli.common import EXIT_OK
+from optreserve.cli.common import EXIT_OK, EXIT_OTHER
 from optreserve.errors import CaseError, Problem
 
 
@@ -49,6 +49,12 @@ def cmd_import(args) -> int:
     else:
         raise CaseError([Problem(str(src), "unknown format: expected a MATPOWER .m or a "
                                  "pandapower .json file")])
+    try:
+        import pandapower  # noqa: F401 - the parser behind both formats
+    except ImportError:
+        print("error: optreserve import needs pandapower: pip install \"optreserve[grid]\" "
+              "(or pip install pandapower)", file=sys.stderr)
+        return EXIT_OTHER
     tables = reader(src, drop_overloaded_limits=args.drop_overloaded_limits)
     write_case_folder(tables, args.out)
     if not args.quiet:
