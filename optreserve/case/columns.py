@@ -138,6 +138,17 @@ UNIT_COLS: list[Col] = [
         unit="s", per_period=False, meaning="time to deliver the full headroom"),
     Col("energy_price_per_mwh", "float", False, NAN, lo=-PRICE_MAX, hi=PRICE_MAX,
         unit="per MWh", per_period=True, meaning="energy price under co-optimisation"),
+    # version 2 governor models: settings of the unit, checked against their models by
+    # case/governor_columns.py (bounds: dynamics/governors.py BOUNDS)
+    Col("governor", "text", False, "lag", per_period=False, version=2,
+        meaning="governor model: lag, reheat, hydro or inverter"),
+    *(Col(name, "float", False, NAN, unit=unit, per_period=False, version=2, meaning=m)
+      for name, unit, m in (
+          ("governor_lag_s", "s", "governor and valve (or converter) time constant T_g"),
+          ("reheat_time_s", "s", "reheater time constant T_rh"),
+          ("hp_fraction", "–", "high-pressure share F_hp of a reheat turbine"),
+          ("water_time_s", "s", "water starting time T_w of a hydro unit"),
+          ("delay_s", "s", "measurement and control delay of an inverter"))),
     Col("energy_up_mwh", "float", False, NAN, **_NONNEG, hi=ENERGY_MAX_MWH, unit="MWh",
         per_period=True, meaning="energy the unit can deliver above its output"),
     Col("energy_down_mwh", "float", False, NAN, **_NONNEG, hi=ENERGY_MAX_MWH, unit="MWh",

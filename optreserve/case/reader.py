@@ -275,7 +275,8 @@ def load_case(path: str | Path) -> Case:
     check_trip_signs(case, events["_line"].to_numpy(), lab("events.csv"), col)
     check_nadir_inertia(case, col)
     col.raise_if_any()
-    case = apply_governor_columns(case, folder)  # governor models: case/governor_columns.py
+    # governor models (case/governor_columns.py): model names and the parameters each needs
+    case = apply_governor_columns(case, folder, settings, units["_line"].to_numpy())
     return case.replace(read_time_s=time.perf_counter() - t0)
 
 

@@ -34,6 +34,7 @@ class Key:
     lo: float | None = None
     hi: float | None = None
     lo_open: bool = False
+    choices: tuple[str, ...] = ()  # a "str" key that takes one of these words (any case)
 
 
 _HZ_DEV = Key("num", 1e-3, 10.0)
@@ -55,6 +56,8 @@ _TOML_SCHEMA: dict[str, dict[str, Key]] = {
     "solver": {"time_limit_s": Key("num", 0.0, 1e7, lo_open=True),
                "mip_gap": Key("num", 0.0, 1.0)},
     "energy": {"co_optimise": Key("bool")},
+    # governor models (case/governor_columns.py): where a provider's response stops
+    "dynamics": {"response_limit": Key("str", choices=("headroom", "room"))},
 }
 
 
@@ -97,6 +100,10 @@ def _as_float(v: Any) -> float | None:
 
 def _value(k: Key, v: Any) -> tuple[Any, str | None]:
     """(typed value, None) or (None, message)."""
+    if k.kind == "str" and k.choices:
+        word = v.strip().lower() if isinstance(v, str) else None
+        return (word, None) if word in k.choices else (
+            None, f"must be one of {', '.join(map(repr, k.choices))}, got {v!r}")
     if k.kind == "str":
         return (v, None) if isinstance(v, str) else (None, "must be a string")
     if k.kind == "bool":
