@@ -123,7 +123,7 @@ def read_nodal(folder: Path, tables: dict, col, has_series: bool, settings: dict
     """Read buses.csv (and interfaces.csv), check the nodal tables against it, and fill the
     area-level columns in place (tables: the typed units/areas/links/events frames with
     their _line column). Problems go to the reader's collector; returns None when any."""
-    from optreserve.case.reader import _read_csv, _typed_table
+    from optreserve.case.csvio import _read_csv, _typed_table
 
     lab = lambda n: str(folder / n)
     t = _read_csv(folder / "buses.csv", lab("buses.csv"), col)
@@ -285,7 +285,7 @@ def _event_share(events, ev_bus, ub, units, buses, b_area, apos, col, file):
 
 def _monitor(folder: Path, links, lim, col, lab):
     """Monitored elements: every link with a limit, then every interface of interfaces.csv."""
-    from optreserve.case.reader import _read_csv, _typed_table
+    from optreserve.case.csvio import _read_csv, _typed_table
 
     L = len(links)
     mon_links = np.flatnonzero(np.isfinite(lim))

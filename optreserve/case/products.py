@@ -112,9 +112,6 @@ def _col(units: pd.DataFrame, name: str, default: np.ndarray) -> np.ndarray:
     return units[name].to_numpy(bool) if name in units.columns else default
 
 
-# derived override columns the reader keeps in units_by_period.csv (the user writes `provides`)
-PRODUCT_SERIES_COLS = ("provides_always", "provides_up", "provides_down", "energy_up_mwh",
-                       "energy_down_mwh")
 ENERGY_COLS = ("energy_up_mwh", "energy_down_mwh")
 
 

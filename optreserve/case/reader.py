@@ -1,11 +1,14 @@
-"""Read and validate a case folder (contract: docs/case-format.md, version 1).
+"""Read and validate a case folder (contract: docs/case-format.md, versions 1 and 2).
 
 The pipeline of one read, one module per concept:
   columns.py        the contract's column tables (names, types, defaults, bounds)
   csvio.py          one CSV file through pandas' C parser, typed from those tables
   toml_settings.py  case.toml: schema, bounds, reader
   checks.py         checks across columns and tables
-  series.py         the *_by_period.csv time series
+  series.py         the *_by_period time series (CSV or Parquet)
+  products.py       provides words, common-mode trips, energy-limited providers
+  nodal.py          buses.csv cases
+  governor_columns.py  governor models against their parameters
   problems.py       collecting problems and warnings ("did you mean")
 
 Every problem is located by file, row (physical line, header = 1 when the file has no
@@ -25,9 +28,6 @@ import numpy as np
 import pandas as pd
 
 from optreserve.case.checks import (
-    DEADBAND_WARN_MHZ,
-    DROOP_WARN_HIGH_PCT,
-    DROOP_WARN_LOW_PCT,
     _check_connected,
     _check_events,
     _check_links,
@@ -39,51 +39,27 @@ from optreserve.case.checks import (
 from optreserve.case.columns import (
     AREA_COLS,
     EVENT_COLS,
-    EVENT_KINDS,
     LINK_COLS,
     UNIT_COLS,
     Col,
     series_columns,
     series_hints,
 )
-from optreserve.case.csvio import FALSE_WORDS, TRUE_WORDS, _read_csv, _Table, _typed_table
+from optreserve.case.csvio import _read_csv, _typed_table
 from optreserve.case.data import Case, DroopSettings, Limits, SolverSettings
 from optreserve.case.governor_columns import apply_governor_columns
 from optreserve.case.nodal import nodal_columns, read_nodal
-from optreserve.case.problems import MAX_PROBLEMS, _Collector
+from optreserve.case.problems import _Collector
 from optreserve.case.products import check_products
 from optreserve.case.rules import fill_limits, rule_warnings
-from optreserve.case.series import SERIES, _check_series, _period_key, _series_file
+from optreserve.case.series import SERIES, _check_series, _series_file
 from optreserve.case.toml_settings import (
-    _TOML_SCHEMA,
     _read_toml,
     _toml_line,
     missing_section_hint,
 )
 
-__all__ = [  # load_case, and the pieces other modules reuse to read their own tables
-    "AREA_COLS",
-    "DEADBAND_WARN_MHZ",
-    "DROOP_WARN_HIGH_PCT",
-    "DROOP_WARN_LOW_PCT",
-    "EVENT_COLS",
-    "EVENT_KINDS",
-    "FALSE_WORDS",
-    "LINK_COLS",
-    "MAX_PROBLEMS",
-    "SERIES",
-    "TRUE_WORDS",
-    "UNIT_COLS",
-    "_TOML_SCHEMA",
-    "Col",
-    "_Collector",
-    "_Table",
-    "_period_key",
-    "_read_csv",
-    "_toml_line",
-    "_typed_table",
-    "load_case",
-]
+__all__ = ["load_case"]
 
 
 # --------------------------------------------------------------------------- the folder

@@ -15,22 +15,12 @@ import numpy as np
 import pandas as pd
 
 from optreserve.case.checks import check_reactance_spread
-from optreserve.case.columns import AREA_COLS, LINK_COLS, UNIT_COLS, series_columns, series_hints
+from optreserve.case.columns import AREA_COLS, LINK_COLS, UNIT_COLS, series_columns
 from optreserve.case.csvio import _read_csv, _Table
 from optreserve.case.problems import MAX_PROBLEMS, _Collector, suggest
 
 SERIES = {"units": ("unit", UNIT_COLS), "areas": ("area", AREA_COLS),
           "links": ("link", LINK_COLS)}
-
-
-def __getattr__(name: str):
-    """SERIES_COLS / SERIES_HINT, computed from the column tables when asked (so columns a
-    later contract version declares are included)."""
-    if name == "SERIES_COLS":
-        return {k: series_columns(k) for k in SERIES}
-    if name == "SERIES_HINT":
-        return {k: series_hints(k) for k in SERIES}
-    raise AttributeError(name)
 
 
 @functools.lru_cache(maxsize=100_000)

@@ -27,7 +27,7 @@ import numpy as np
 import pandas as pd
 
 from optreserve.case.data import Case
-from optreserve.case.reader import _Collector
+from optreserve.case.problems import _Collector
 from optreserve.dynamics.events import (  # noqa: F401
     DURATION_S,
     FLAT_HZ,
