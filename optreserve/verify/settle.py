@@ -155,14 +155,13 @@ class BatchPoints:
 
 
 def settle_instances(dP, sigma, t, area_e, trip, gain, r_up, r_dn, d_hz, unit_area, D_a,
-                     F0, from_idx, to_idx, reactance, absent=None, respond=None, lost=None
+                     F0, from_idx, to_idx, reactance, absent=None, lost=None
                      ) -> BatchPoints:
     """Settled points of M event instances: instance m happens in period t[m] with per-period
     gains and headroom (T, N), per-period load self-regulation D_a (T, A), pre-event flows
     F0 (T, L) and reactances (T, L); trip[m] is the tripped unit or -1; absent[m] a unit that
-    gives no response in instance m (its output is not lost) or -1; respond = (up, dn), each
-    (T, N) bool, the directions each unit responds in (`provides = up | down`, or a unit with
-    no room that way): in a blocked direction a unit gives no response (default: both);
+    gives no response in instance m (its output is not lost) or -1 (a direction a unit does
+    not provide in holds no headroom, r = 0 there, so it gives no response in it);
     lost = (instances, units) pairs of every unit an instance loses (a common-mode trip loses
     several; default: trip alone). The lost output is dP itself; the lost units respond not."""
     M = len(dP)
@@ -172,10 +171,6 @@ def settle_instances(dP, sigma, t, area_e, trip, gain, r_up, r_dn, d_hz, unit_ar
     col_of = np.full(gain.shape[1], -1)
     col_of[live] = np.arange(len(live))
     K = gain[t][:, live]
-    if respond is not None:  # a blocked direction gives no response
-        ok = np.where((sigma > 0)[:, None], np.asarray(respond[0], bool)[t],
-                      np.asarray(respond[1], bool)[t])
-        K = np.where(ok[:, live], K, 0.0)
     for out in (trip, absent if absent is not None else np.full(M, -1)):
         tr = np.nonzero((out >= 0) & (col_of[np.maximum(out, 0)] >= 0))[0]
         K[tr, col_of[out[tr]]] = 0.0
