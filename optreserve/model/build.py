@@ -47,6 +47,7 @@ class ModelInfo:
     steps_pct: np.ndarray | None
     change_cols: np.ndarray  # (block, unit) flat indices that carry a change indicator
     elastic: bool
+    flows: bool = True  # the program has post-event flow rows (which depend on x_hat)
 
     @property
     def ev(self) -> Events:  # instances in the Events shape
@@ -55,9 +56,11 @@ class ModelInfo:
 
 
 def build_model(case: Case, x_hat: np.ndarray | None = None, elastic: bool = False,
-                relax: bool = False, hz: Horizon | None = None, nadir_scale=None
-                ) -> tuple[LinearProgram, ModelInfo]:
-    """Describe the whole allocation problem as sparse blocks."""
+                relax: bool = False, hz: Horizon | None = None, nadir_scale=None,
+                flows: bool = True) -> tuple[LinearProgram, ModelInfo]:
+    """Describe the whole allocation problem as sparse blocks. flows=False leaves out the
+    post-event flow rows of fixed-output cases (the solve loop adds them only when the
+    allocation without them overloads a link: solver/run.py)."""
     hz = hz if hz is not None else prepare(case)
     N, T, B = hz.N, hz.T, hz.n_blocks
     n_a = len(case.areas)
@@ -126,12 +129,13 @@ def build_model(case: Case, x_hat: np.ndarray | None = None, elastic: bool = Fal
         _rows_nadir(lp, case, hz, r_up, r_dn, elastic, nadir_scale)
     if len(case.links) and hz.co_opt:
         _rows_flows_dispatch(lp, hz, K, G, ginfo, x_hat, elastic, P)
-    elif len(case.links):
+    elif len(case.links) and flows:
         _rows_flows(lp, hz, K, G, ginfo, x_hat, elastic)
     change_cols = _rows_change(lp, case, hz, K, st, relax)
 
     info = ModelInfo(case, hz, F_model, x_hat, classes, unit_class, group_of_t,
-                     st[0], st[1], st[2], st[3], change_cols, elastic)
+                     st[0], st[1], st[2], st[3], change_cols, elastic,
+                     flows=bool(len(case.links)) and (flows or hz.co_opt))
     return lp, info
 
 

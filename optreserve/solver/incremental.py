@@ -9,9 +9,12 @@ is tight and that dual is 0 although a larger event costs real money. The increm
     (cost*(dP + step) - cost*(dP)) / step / h_t
 
 re-solves the whole problem, steps included, once per event instance (warm-started from the
-optimum). Both optima are taken at a tight gap and without the model's tie-break price on
-headroom, so that the difference is the change of the real cost (headroom cost plus any
-change penalty).
+optimum). Both optima are taken at a tight gap (the solve's own optimum is the base when
+HiGHS proved it to that gap, as it does when its search tree closes) of the model's own
+objective, and the difference of their real costs (headroom cost plus any change penalty,
+without the tie-break price on headroom) is reported. The tie-break can move each real cost
+by at most TIE_BREAK_PER_MW_H x the headroom it could hold (a trade between allocations
+whose real costs differ by less than that), i.e. the price by at most that over the step.
 """
 
 from __future__ import annotations
@@ -95,48 +98,60 @@ def tight_events(lp: LinearProgram, info: ModelInfo, x: np.ndarray) -> np.ndarra
     return tight[:M]
 
 
-def _real_cost_program(lp: LinearProgram, hz: Horizon) -> LinearProgram:
-    """The same program costed at the real headroom prices (no tie-break)."""
+def real_cost(lp: LinearProgram, hz: Horizon, x: np.ndarray) -> float:
+    """The cost of x at the real headroom prices (the program's objective without the
+    tie-break price on headroom)."""
     out = copy(lp)
     out._cost = list(lp._cost)
     out.set_cost("r_up", (hz.price_up * hz.hours[:, None]).reshape(-1))
     out.set_cost("r_dn", (hz.price_dn * hz.hours[:, None]).reshape(-1))
-    return out
+    return float(out.objective(x))
 
 
 def optimal_cost(case, hz: Horizon, info: ModelInfo, start: np.ndarray | None,
-                 time_limit: float | None = None, nadir_scale=None
-                 ) -> tuple[float, np.ndarray | None, float]:
-    """Least real cost of the case stacked as hz (the dead-band fixed point re-run from the
-    base solve's guesses). Returns (cost, solution, solver seconds); cost NaN when no
-    allocation is found (inf when the problem is infeasible)."""
+                 time_limit: float | None = None, nadir_scale=None, base_lp=None
+                 ) -> tuple[float, np.ndarray | None, float, bool]:
+    """Real cost of the optimum of the case stacked as hz at PRICE_MIP_GAP (flow rows left
+    out while no link overloads, as in the solve; the dead-band fixed point re-run from the
+    base solve's guesses). Returns (cost, solution, solver seconds, whether the solution's
+    program has the flow rows); cost NaN when no allocation is found (inf when the problem
+    is infeasible)."""
     from optreserve.solver.readback import dispatch_view, exact_points
-    from optreserve.solver.run import _needs_fixed_point
+    from optreserve.solver.run import _needs_fixed_point, carry_start, overloads
 
     x_hat = np.asarray(info.x_hat, float).copy()
+    flows = info.flows
     solve_s = 0.0
     out = None
+    last = (base_lp, start) if base_lp is not None and start is not None else None
     for _ in range(PRICE_FIXED_POINT_ITER):
-        lp, inf = build_model(case, x_hat=x_hat, hz=hz, nadir_scale=nadir_scale)
-        lp = _real_cost_program(lp, hz)
-        st = start if start is not None and len(start) == lp.n_cols else None
+        lp, inf = build_model(case, x_hat=x_hat, hz=hz, nadir_scale=nadir_scale, flows=flows)
+        st = carry_start(*last, lp) if last is not None else None
         out = solve_program(lp, engine="highspy", start=st, mip_gap=PRICE_MIP_GAP,
                             time_limit=time_limit)
         solve_s += out.solve_time_s
         if out.status == "infeasible":
-            return float("inf"), None, solve_s
+            return float("inf"), None, solve_s, flows
         if out.x is None:
-            return float("nan"), None, solve_s
+            return float("nan"), None, solve_s, flows
+        last = (lp, out.x)
+        inf.hz = dispatch_view(inf.hz, lp, out.x)
+        if not inf.flows and len(case.links):
+            pts = exact_points(inf, lp, out.x)
+            if not overloads(inf.hz, pts):
+                break
+            flows = True  # this optimum overloads a link: again with the flow rows
+            exact = np.abs(pts.deviation_hz)
+            x_hat = np.where((inf.hz.dP > 0) & np.isfinite(exact), exact, x_hat)
+            continue
         if not _needs_fixed_point(inf):
             break
-        inf.hz = dispatch_view(inf.hz, lp, out.x)
         exact = np.abs(exact_points(inf, lp, out.x).deviation_hz)
         live = (inf.hz.dP > 0) & np.isfinite(exact)
         if np.all(np.abs(exact - x_hat)[live] <= PRICE_FIXED_POINT_TOL_HZ):
             break
         x_hat = np.where(live, exact, x_hat)
-        start = out.x
-    return lp.objective(out.x), out.x, solve_s
+    return real_cost(lp, hz, out.x), out.x, solve_s, flows
 
 
 def event_still_met(case, hz: Horizon, info: ModelInfo, lp: LinearProgram, x: np.ndarray,
@@ -174,19 +189,24 @@ def event_still_met(case, hz: Horizon, info: ModelInfo, lp: LinearProgram, x: np
 
 def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
                        step_mw: float | None = None, time_limit: float | None = None,
-                       nadir_scale=None):
+                       nadir_scale=None, lp: LinearProgram | None = None, out=None):
     """Incremental cost per MW and hour of each event instance and of each area's own-reserve
     requirement (where it has one), by re-solving with that one quantity grown by its step.
     Returns (event (M,), reserve (T, A), seconds spent solving, seconds in all); NaN where
     not computed (a trip whose size is a dispatch decision, an area without requirement, a
-    re-solve without answer), inf where the grown problem has no allocation."""
+    re-solve without answer), inf where the grown problem has no allocation. lp/out: the
+    solve's program and outcome; its optimum is the base when HiGHS proved it within
+    PRICE_MIP_GAP, else the base is solved again at that gap."""
     t0 = time.perf_counter()
     M = len(hz.dP)
     T, A = hz.own.shape
     event = np.full(M, np.nan)
     reserve = np.full((T, A), np.nan)
     progress.step("re-solving for incremental prices")
-    base, x0, solve_s = optimal_cost(case, hz, info, x, time_limit, nadir_scale)
+    if lp is not None and out is not None and base_is_proven(out):
+        base, x0, solve_s, flows = real_cost(lp, hz, x), x, 0.0, info.flows
+    else:
+        base, x0, solve_s, flows = optimal_cost(case, hz, info, x, time_limit, nadir_scale, lp)
     if not np.isfinite(base):
         return event, reserve, solve_s, time.perf_counter() - t0
     fixed = hz.dP_var < 0 if hz.dP_var is not None else np.ones(M, bool)
@@ -197,7 +217,8 @@ def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
     # with the deviation; that flows then still only tighten is assumed. Co-optimised
     # outputs move the pre-event flows: always re-solved.)
     shortcut = not hz.co_opt and x0 is not None
-    lp0, info0 = build_model(case, x_hat=info.x_hat, hz=hz, nadir_scale=nadir_scale)
+    lp0, info0 = build_model(case, x_hat=info.x_hat, hz=hz, nadir_scale=nadir_scale,
+                             flows=flows)
     steps = price_steps(hz.dP)
     if step_mw is not None:
         steps = price_steps(hz.dP, step_mw)
@@ -208,7 +229,7 @@ def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
         if shortcut and event_still_met(case, grown, info0, lp0, x0, m, nadir_scale):
             event[m] = 0.0
             continue
-        cost, _, s = optimal_cost(case, grown, info, x0, time_limit, nadir_scale)
+        cost, _, s, _ = optimal_cost(case, grown, info0, x0, time_limit, nadir_scale, lp0)
         solve_s += s
         event[m] = (cost - base) / steps[m] / hz.hours[hz.inst_t[m]]
     ta, aa = np.nonzero(hz.own > 0)
@@ -221,7 +242,7 @@ def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
         if shortcut and held >= own[ta[k], aa[k]]:
             reserve[ta[k], aa[k]] = 0.0
             continue
-        cost, _, s = optimal_cost(case, grown, info, x0, time_limit, nadir_scale)
+        cost, _, s, _ = optimal_cost(case, grown, info0, x0, time_limit, nadir_scale, lp0)
         solve_s += s
         reserve[ta[k], aa[k]] = (cost - base) / r_steps[k] / hz.hours[ta[k]]
     clean = np.where(np.abs(event) < 1e-9, 0.0, event)
@@ -229,13 +250,19 @@ def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
         time.perf_counter() - t0
 
 
+def base_is_proven(out) -> bool:
+    """Whether HiGHS proved the solve's optimum within PRICE_MIP_GAP (relative)."""
+    return (out.status == "optimal" and out.mip_gap is not None
+            and out.mip_gap <= PRICE_MIP_GAP)
+
+
 def attach_incremental(result, case, hz: Horizon, info: ModelInfo, x: np.ndarray,
                        step_mw: float | None = None, time_limit: float | None = None,
-                       nadir_scale=None):
+                       nadir_scale=None, lp: LinearProgram | None = None, out=None):
     """Add incremental_cost_per_mw_h to the result's events and
     reserve_incremental_cost_per_mw_h to its prices; returns (build s, solve s)."""
     event, reserve, solve_s, total_s = incremental_prices(case, hz, info, x, step_mw,
-                                                          time_limit, nadir_scale)
+                                                          time_limit, nadir_scale, lp, out)
     result.events["incremental_cost_per_mw_h"] = event
     if result.prices is not None:
         result.prices["reserve_incremental_cost_per_mw_h"] = reserve.reshape(-1)

@@ -76,7 +76,8 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
     hz = prepare(case) if hz is None else hz
     run = _Run(case, hz, engine, relax, extend, warm, nadir_sim, time_limit, t_start,
                opts=dict(time_limit=time_limit, mip_gap=mip_gap, verbose=verbose),
-               nadir=_nadir_state(case), t_build=time.perf_counter() - t_start)
+               nadir=_nadir_state(case), t_build=time.perf_counter() - t_start,
+               flows=not lazy_flows(case, hz))
     final = None
     while final is None:  # dead-band passes and nadir rounds until one answer stands
         final = _dead_band_pass(run)
@@ -109,6 +110,8 @@ class _Run:
     history: list = field(default_factory=list)
     retried: bool = False  # the elastic dead-band guess was tried
     timed_out: bool = False  # stopped by the time budget before the passes converged
+    flows: bool = True  # flow rows in the program (False: left out until a link overloads)
+    last: tuple | None = None  # (lp, x) of the last pass solved: the next pass's warm start
 
 
 def _dead_band_pass(run: _Run):
@@ -132,7 +135,7 @@ def _build_pass(run: _Run):
     progress.step("building the model" + (f" (dead-band pass {run.iterations})"
                                            if run.iterations > 1 else ""))
     lp, info = build_model(run.case, x_hat=run.x_hat, relax=run.relax, hz=run.hz,
-                           nadir_scale=run.nadir["guide"])
+                           nadir_scale=run.nadir["guide"], flows=run.flows)
     if run.extend is not None:
         run.extend(lp, info)
     run.t_build += time.perf_counter() - t0
@@ -157,11 +160,13 @@ def _solve_pass(run: _Run, lp: LinearProgram, info: ModelInfo) -> Outcome:
     """HiGHS on the pass's program, warm-started from the last pass (same columns) or from
     the caller's warm start on the first."""
     h = run.history
-    start = h[-1][2].x if h and h[-1][0].n_cols == lp.n_cols else None
+    start = carry_start(*run.last, lp) if run.last is not None else None
     if start is None and run.warm is not None and not h:
         start = run.warm(lp, info)
     out = solve_program(lp, engine=run.engine, want_duals=not lp.is_mip, start=start,
                         **run.opts)
+    if out.x is not None:
+        run.last = (lp, out.x)
     run.t_build += out.emit_time_s
     run.t_solve += out.solve_time_s
     return out
@@ -170,7 +175,8 @@ def _solve_pass(run: _Run, lp: LinearProgram, info: ModelInfo) -> Outcome:
 def _on_infeasible(run: _Run, info: ModelInfo):
     """An infeasible pass: retry the dead-band guess, or relax the nadir rows (the simulation
     then decides), or keep the last good pass; with none, the diagnosis (InfeasibleError)."""
-    if run.iterations == 1 and _needs_fixed_point(info) and not run.retried:
+    first_with_flows = not any(i.flows for _, i, _ in run.history)
+    if first_with_flows and _needs_fixed_point(info) and not run.retried:
         # the first guess (every event at the limit) can misjudge dead-band flows: take the
         # settled points of the least-violating allocation and try again
         run.retried = True
@@ -212,13 +218,18 @@ def _after_pass(run: _Run, lp: LinearProgram, info: ModelInfo, out: Outcome):
     """A pass with an answer: the settled points recomputed independently; another pass
     while the dead-band guess has not settled, a nadir round once it has."""
     info.hz = dispatch_view(info.hz, lp, out.x)
-    run.history.append((lp, info, out))
     progress.step("recomputing settled points independently")
     with run.clock("verify"):
         points = exact_points(info, lp, out.x)
     exact = np.abs(points.deviation_hz)
     live = info.hz.dP > 0
     settled = np.where(live & np.isfinite(exact), exact, info.x_hat)
+    if flows_left_out(info) and overloads(info.hz, points):
+        # the allocation without flow rows overloads a link: solve again with them, at the
+        # settled points of this allocation (it is no answer: not kept in the history)
+        run.flows, run.x_hat = True, settled
+        return None
+    run.history.append((lp, info, out))
     if not _needs_fixed_point(info):
         # no row depends on the settled guess: the exact deviation is the model's own
         info.x_hat = np.where(live, exact, info.x_hat)
@@ -266,14 +277,59 @@ def _finish(run: _Run, lp: LinearProgram, info: ModelInfo, out: Outcome, points,
         with clock("incremental_prices"):  # the MILP re-solves at the grown event sizes
             # at the nadir rows the solve ended with (loosened scale, simulation cuts)
             attach_incremental(result, case, run.hz, info, out.x, price_step, run.time_limit,
-                               nadir["guide"])
+                               nadir["guide"], lp, out)
     result.timings_s.update(read=case.read_time_s, build=run.t_build, solve=run.t_solve,
                             **clock, write=0.0)
     close_total(result.timings_s, time.perf_counter() - run.t_start + case.read_time_s)
     return result
 
 
+def lazy_flows(case: Case, hz: Horizon) -> bool:
+    """Whether the first pass leaves the flow rows out: a fixed-output case with links. A
+    program without them is a relaxation that does not depend on the settled guess; when
+    its optimum overloads no link by the independent flows it is the answer (formulation.md,
+    section 7a), otherwise the rows are added and the dead-band passes run as before."""
+    return bool(len(case.links)) and not hz.co_opt
+
+
+def flows_left_out(info: ModelInfo) -> bool:
+    return bool(len(info.case.links)) and not info.flows
+
+
+# A flow counts as an overload above its limit by more than this (relative): the solver's
+# feasibility tolerance, far below the final verification's allowance (readback.py).
+OVERLOAD_REL = 1e-7
+
+
+def overloads(hz: Horizon, points) -> bool:
+    """Whether any event instance's independently computed flows exceed a link limit."""
+    live = hz.dP > 0
+    if not live.any() or hz.F0.shape[1] == 0:
+        return False
+    lim = hz.Fmax[hz.inst_t[live]]
+    flow = np.abs(points.flow_after_mw[live])
+    return bool((flow > lim * (1 + OVERLOAD_REL) + OVERLOAD_REL).any())
+
+
+def carry_start(old: LinearProgram, x: np.ndarray, lp: LinearProgram):
+    """The last pass's solution as the warm start of lp: whole when the columns are laid out
+    alike, else the column blocks both share (a partial start HiGHS completes)."""
+    if old.n_cols == lp.n_cols and old.var_blocks == lp.var_blocks:
+        return x
+    idx, val = [], []
+    for name, b in lp.var_blocks.items():
+        o = old.var_blocks.get(name)
+        if o is not None and o.size == b.size:
+            idx.append(b.idx())
+            val.append(x[o.slice])
+    if not idx:
+        return None
+    return np.concatenate(idx), np.concatenate(val)
+
+
 def _needs_fixed_point(info: ModelInfo) -> bool:
+    if not info.flows:  # no row depends on the settled guess
+        return False
     hz = info.hz
     live = (hz.dP > 0).any() or (hz.co_opt and (hz.dP_var >= 0).any())
     guessed = (hz.d_hz[hz.capable_b.any(axis=0)] > 0).any() or hz.co_opt
