@@ -379,3 +379,15 @@ def test_nadir_coefficient_shapes_broadcast_like_the_rows():
         assert np.allclose(coef[m, k], one, rtol=1e-13, atol=1e-13)
     with pytest.raises(ValueError):
         R.nadir_energy_coef(gov, times, reach, 0.0)
+
+
+def test_exprel_matches_scipy_special():
+    """governors.exprel replaces scipy.special.exprel (outside reference: scipy) on the
+    non-positive arguments decay_dd gives it, from 1e-20 to 1e3 in magnitude, and at 0."""
+    from scipy.special import exprel as reference
+
+    from optreserve.dynamics.governors import exprel
+
+    x = np.r_[-np.logspace(-20, 3, 2001), 0.0]
+    assert np.allclose(exprel(x), reference(x), rtol=1e-15, atol=0.0)
+    assert exprel(0.0) == 1.0
