@@ -12,10 +12,15 @@ guarded section is left. Library use without the handler is unaffected.
 from __future__ import annotations
 
 import signal
+import threading
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 
 _state: dict = {"signum": None, "depth": 0, "cancel": []}
+# guarded sections may run in several threads (side-by-side price re-solves): their count and
+# cancel list change under this lock; the handler (main thread) only reads them, so it never
+# waits for it
+_lock = threading.Lock()
 
 
 class Interrupted(KeyboardInterrupt):
@@ -59,19 +64,24 @@ def check() -> None:
 @contextmanager
 def deferred(cancel: Callable[[], None] | None = None) -> Iterator[None]:
     """A section a signal must not cut: it is recorded (and `cancel` called) and raised as
-    Interrupted when the outermost section ends."""
-    _state["depth"] += 1
-    if cancel is not None:
-        _state["cancel"].append(cancel)
-        if _state["signum"] is not None:  # already asked to stop before the section began
-            cancel()
+    Interrupted when the outermost section ends (of every thread's)."""
+    with _lock:
+        _state["depth"] += 1
+        if cancel is not None:
+            _state["cancel"] = [*_state["cancel"], cancel]
+    if cancel is not None and _state["signum"] is not None:  # asked to stop already
+        cancel()
     try:
         yield
     finally:
-        _state["depth"] -= 1
-        if cancel is not None and cancel in _state["cancel"]:
-            _state["cancel"].remove(cancel)
-        if _state["depth"] == 0 and _state["signum"] is not None:
+        with _lock:
+            _state["depth"] -= 1
+            if cancel is not None and cancel in _state["cancel"]:
+                rest = list(_state["cancel"])
+                rest.remove(cancel)
+                _state["cancel"] = rest
+            last = _state["depth"] == 0
+        if last and _state["signum"] is not None:
             raise Interrupted(_state["signum"])
 
 

@@ -99,6 +99,47 @@ def test_handler_raises_outside_and_defers_inside_a_guarded_section():
     interrupt.reset()
 
 
+def test_signal_while_price_resolves_run_side_by_side(monkeypatch):
+    """The incremental-price re-solves run in two threads (solver/incremental.py _map), each
+    inside its own guarded section. A signal then asks both solvers to stop, is not raised
+    while either section runs, and comes out of _map as Interrupted once both have ended."""
+    import threading
+
+    from optreserve.solver import incremental
+
+    monkeypatch.setenv("OPTRESERVE_PRICE_THREADS", "2")
+    interrupt.reset()
+    inside = threading.Barrier(3)
+    go_on = threading.Event()
+    cancelled, finished, caught = [], [], []
+
+    def job(k):
+        with interrupt.deferred(cancel=lambda: cancelled.append(k)):
+            inside.wait(timeout=10)
+            go_on.wait(timeout=10)
+            finished.append(k)
+        return k
+
+    def run():
+        try:
+            incremental._map(job, [0, 1])
+        except interrupt.Interrupted as e:
+            caught.append(e.exit_code)
+
+    t = threading.Thread(target=run)
+    t.start()
+    try:
+        inside.wait(timeout=10)  # both re-solves are in their guarded sections
+        interrupt.handler(signal.SIGINT)  # what the main thread's handler does: no raise
+        go_on.set()
+        t.join(timeout=10)
+    finally:
+        go_on.set()
+        interrupt.reset()
+    assert sorted(cancelled) == [0, 1] and sorted(finished) == [0, 1]
+    assert caught == [130]
+
+
 def test_highs_interrupted_by_cancel_is_reported_interrupted_and_log_removed(tmp_path,
                                                                             monkeypatch):
     """A real HiGHS run of a generated case with the stop requested: highspy's interrupt

@@ -19,6 +19,8 @@ whose real costs differ by less than that), i.e. the price by at most that over 
 
 from __future__ import annotations
 
+import os
+import sys
 import time
 from copy import copy
 from dataclasses import replace
@@ -154,37 +156,37 @@ def optimal_cost(case, hz: Horizon, info: ModelInfo, start: np.ndarray | None,
     return real_cost(lp, hz, out.x), out.x, solve_s, flows
 
 
-def event_still_met(case, hz: Horizon, info: ModelInfo, lp: LinearProgram, x: np.ndarray,
-                    m: int, nadir_scale=None) -> bool:
-    """Whether the allocation x (a solution of the base program lp) still meets instance m
-    of the case stacked as hz: its independently recalculated settled deviation and flows
-    (verify/settle.py) within the limits, and its nadir rows (model/nadir.py) held. The
-    other rows do not depend on the instance's size."""
+def events_still_met(case, hz: Horizon, info: ModelInfo, lp: LinearProgram, x: np.ndarray,
+                     grown_dP: np.ndarray, nadir_scale=None) -> np.ndarray:
+    """(M,) whether the allocation x (a solution of the base program lp) still meets each
+    instance m of the case stacked as hz with its size grown to grown_dP[m]: its
+    independently recalculated settled deviation and flows (verify/settle.py) within the
+    limits, and its nadir rows (model/nadir.py) held. The other rows do not depend on the
+    instance's size, and an instance's settled point and rows depend on its own size only,
+    so every instance is judged grown at once."""
     from optreserve.model.horizon import out_pairs, responds_in
     from optreserve.model.nadir import nadir_terms
     from optreserve.solver.readback import evaluate_allocation, period_values
 
+    grown = replace(hz, dP=np.asarray(grown_dP, float))
     gain, r_up, r_dn = period_values(lp, info, x)
-    pts = evaluate_allocation(case, hz, gain, r_up, r_dn)
-    if not abs(pts.deviation_hz[m]) <= info.F_model:
-        return False
-    t = hz.inst_t[m]
-    if hz.F0.shape[1] and not np.all(np.abs(pts.flow_after_mw[m]) <= hz.Fmax[t]):
-        return False
+    pts = evaluate_allocation(case, grown, gain, r_up, r_dn)
+    ok = np.abs(pts.deviation_hz) <= info.F_model  # NaN (no settled point): not met
+    if hz.F0.shape[1]:
+        ok &= np.all(np.abs(pts.flow_after_mw) <= hz.Fmax[hz.inst_t], axis=1)
     rows_free = getattr(nadir_scale, "relaxed", False)  # the simulation decided, not rows
     if case.limits.max_nadir_deviation_hz is not None and not rows_free:
-        coef, need = nadir_terms(case, hz, nadir_scale)
-        live = responds_in(hz, [m])[0].copy()
-        _, jj = out_pairs(hz, np.array([m]))
-        live[jj] = False
-        K = lp.value(x, "K").reshape(hz.n_blocks, hz.N)[hz.block[t]]
+        coef, need = nadir_terms(case, grown, nadir_scale)  # (M, K, N), (M, K)
+        live = responds_in(hz).copy()
+        mm, jj = out_pairs(hz)
+        live[mm, jj] = False
+        K = lp.value(x, "K").reshape(hz.n_blocks, hz.N)[hz.block[hz.inst_t]]  # (M, N)
         reach = np.maximum(case.limits.max_nadir_deviation_hz - hz.d_hz, 0.0)
-        r = r_up[t] if hz.sigma[m] > 0 else r_dn[t]
-        q = np.where(live, np.minimum(r, K * reach), 0.0)
-        have = coef[m] @ q
-        if not np.all(have >= need[m] - FEASIBLE_REL * np.maximum(1.0, np.abs(need[m]))):
-            return False
-    return True
+        r = np.where((hz.sigma > 0)[:, None], r_up[hz.inst_t], r_dn[hz.inst_t])
+        q = np.where(live, np.minimum(r, K * reach[None, :]), 0.0)
+        have = np.einsum("mkn,mn->mk", coef, q)
+        ok &= np.all(have >= need - FEASIBLE_REL * np.maximum(1.0, np.abs(need)), axis=1)
+    return ok
 
 
 def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
@@ -222,16 +224,17 @@ def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
     steps = price_steps(hz.dP)
     if step_mw is not None:
         steps = price_steps(hz.dP, step_mw)
-    for m in np.nonzero((hz.dP > 0) & fixed)[0]:  # one re-solve per instance
-        dP = hz.dP.copy()
-        dP[m] += steps[m]
-        grown = replace(hz, dP=dP)
-        if shortcut and event_still_met(case, grown, info0, lp0, x0, m, nadir_scale):
+    jobs = []  # (array, index, grown stacking, step): the re-solves still needed
+    priced = (hz.dP > 0) & fixed
+    met = (events_still_met(case, hz, info0, lp0, x0, np.where(priced, hz.dP + steps, hz.dP),
+                            nadir_scale) if shortcut else np.zeros(M, bool))
+    for m in np.nonzero(priced)[0]:  # one re-solve per instance
+        if met[m]:
             event[m] = 0.0
             continue
-        cost, _, s, _ = optimal_cost(case, grown, info0, x0, time_limit, nadir_scale, lp0)
-        solve_s += s
-        event[m] = (cost - base) / steps[m] / hz.hours[hz.inst_t[m]]
+        dP = hz.dP.copy()
+        dP[m] += steps[m]
+        jobs.append((event, m, replace(hz, dP=dP), steps[m] * hz.hours[hz.inst_t[m]]))
     ta, aa = np.nonzero(hz.own > 0)
     r_steps = price_steps(hz.own[ta, aa], step_mw)
     for k in range(len(ta)):
@@ -242,12 +245,45 @@ def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
         if shortcut and held >= own[ta[k], aa[k]]:
             reserve[ta[k], aa[k]] = 0.0
             continue
-        cost, _, s, _ = optimal_cost(case, grown, info0, x0, time_limit, nadir_scale, lp0)
+        jobs.append((reserve, (ta[k], aa[k]), grown, r_steps[k] * hz.hours[ta[k]]))
+
+    def resolve(job):
+        return optimal_cost(case, job[2], info0, x0, time_limit, nadir_scale, lp0)
+
+    for job, (cost, _, s, _) in zip(jobs, _map(resolve, jobs)):
         solve_s += s
-        reserve[ta[k], aa[k]] = (cost - base) / r_steps[k] / hz.hours[ta[k]]
+        job[0][job[1]] = (cost - base) / job[3]
     clean = np.where(np.abs(event) < 1e-9, 0.0, event)
     return clean, np.where(np.abs(reserve) < 1e-9, 0.0, reserve), solve_s, \
         time.perf_counter() - t0
+
+
+# Re-solves run side by side in this many threads (HiGHS releases the GIL while it solves;
+# each re-solve is its own single-threaded HiGHS, so the values do not depend on it). Inside
+# a Dask worker the points or blocks already fill the cores: one. OPTRESERVE_PRICE_THREADS
+# overrides.
+def price_threads() -> int:
+    env = os.environ.get("OPTRESERVE_PRICE_THREADS")
+    if env:
+        return max(1, int(env))
+    if "distributed" in sys.modules:
+        try:
+            sys.modules["distributed"].get_worker()
+            return 1
+        except (ValueError, AttributeError):
+            pass
+    return max(1, min(2, os.cpu_count() or 1))
+
+
+def _map(fn, jobs: list) -> list:
+    """fn over jobs, in order; in price_threads() threads when there are several."""
+    n = min(price_threads(), len(jobs))
+    if n <= 1:
+        return [fn(j) for j in jobs]
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=n, thread_name_prefix="optreserve-price") as pool:
+        return list(pool.map(fn, jobs))
 
 
 def base_is_proven(out) -> bool:
