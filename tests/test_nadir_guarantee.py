@@ -220,6 +220,34 @@ def test_demo_allocation_meets_its_nadir_limit_in_independent_integration():
     assert max(dips) == pytest.approx(res.nadir_check["worst_hz"], abs=2e-3)
 
 
+def test_a_loosening_too_far_steps_back_and_returns_a_confirmed_allocation(monkeypatch):
+    """Rows loosened far too much (the step to the power 12): the loosened candidate dips past
+    0.8 Hz, the loop steps halfway back once and returns the cheapest candidate the
+    simulation confirmed, which the independent integration also finds within 0.8 Hz, and
+    which costs no more than the rows' own answer (solved here with no loosening)."""
+    from pathlib import Path
+    demo = Path(__file__).resolve().parents[1] / "instances" / "demo-tri-valley"
+    case = optreserve.load_case(demo)
+    monkeypatch.setattr(nadir_loop, "NADIR_LOOSEN", 0)
+    rows_only = run.solve(case)
+    monkeypatch.setattr(nadir_loop, "NADIR_LOOSEN", 1)
+    monkeypatch.setattr(nadir_loop, "NADIR_LOOSEN_POWER", 12.0)
+    seen = []
+    real = nadir_loop._nadir_step_back
+
+    def spy(nadir):
+        seen.append(nadir["guide"].scale.copy())
+        return real(nadir)
+
+    monkeypatch.setattr(nadir_loop, "_nadir_step_back", spy)
+    res = run.solve(case)
+    assert seen, "the loosening did not go past the limit: no step back tried"
+    assert res.status == "optimal" and res.nadir_check["confirmed"] is True
+    dips = [_reference_dip(case, res.allocation, event=k) for k in range(len(case.events))]
+    assert max(dips) <= 0.8 + 2e-3, dips
+    assert res.objective_per_h <= rows_only.objective_per_h + 1e-6
+
+
 def test_hydro_provider_found_from_the_stable_side(case_dir):
     """One hydro provider (T_g 0.5 s, T_w 1.5 s, the ideal penstock with permanent droop
     only): too much gain makes it unstable, so neither the rows' answer nor "every provider at
