@@ -220,11 +220,11 @@ class EventBatch:
         self.has_deadband = bool(np.any(self.d > 0))
         self.d_full = full(self.d, G)
         # ring slots of the demands u[k − m] and u[k − m − 1], per step modulo the ring, as
-        # flat (slot, unit) indices of one take (each twice: for x1 and x2)
+        # flat (slot, unit) indices of one take
         slots, cols = np.arange(self.ring)[:, None], np.arange(G)
         now = ((slots - self.lag) % self.ring) * G + cols
         prev = ((slots - self.lag - 1) % self.ring) * G + cols
-        self.i_ring = np.concatenate([now, now, prev, prev], axis=1)
+        self.i_ring = np.concatenate([now, prev], axis=1)
 
     def run_to(self, duration_s: float) -> None:
         n_end = round(duration_s / self.h)
@@ -239,9 +239,9 @@ class EventBatch:
         x1, x2, x_flat = x[:, 0], x[:, 1], x.reshape(M, 2 * G)
         ring, n_ring = self.u_hist, self.ring
         ring_flat, i_ring = ring.reshape(M, n_ring * G), self.i_ring
-        # u[k − m] twice (for x1 and x2), then u[k − m − 1] twice
-        u_both = np.empty((M, 4, G))
-        u_now, u_prev, u_both_flat = u_both[:, :2], u_both[:, 2:], u_both.reshape(M, 4 * G)
+        # u[k − m], then u[k − m − 1] (each for x1 and x2 as broadcast views)
+        u_both = np.empty((M, 2, G))
+        u_now, u_prev, u_both_flat = u_both[:, :1], u_both[:, 1:], u_both.reshape(M, 2 * G)
         if self.k == 0:  # no last rate yet: q = h/8 · the rate now (no curvature term)
             self.s[:, self.i_one + 1:] = (B[:, A + self.i_one + 1:] @ self.s[..., None])[..., 0]
         # rows of work: [−Δf at mid-step (A), s (n_s)]; step i's s in hist[i, :, A:]
@@ -249,7 +249,7 @@ class EventBatch:
         hist[0, :, A:, 0] = self.s
         resp = np.empty((n, M, G)) if self.record_units else None
         f, t, u = np.empty((M, G)), np.empty((M, G)), np.empty((M, G))
-        u2, t2 = np.empty((M, 2, G)), np.empty((M, 2, G))
+        u_b, t2 = u[:, None], np.empty((M, 2, G))  # u_b: u for x1 and x2 (a broadcast view)
         for i in range(n):
             k = self.k + i
             nxt = hist[i + 1]
@@ -271,9 +271,8 @@ class EventBatch:
                 np.add(x, np.multiply(gn, u_now, out=t2), out=x)
                 np.add(x, np.multiply(gp, u_prev, out=t2), out=x)
             else:
-                np.minimum(f, hi, out=u2[:, 0])
-                u2[:, 1] = u2[:, 0]
-                np.add(x, np.multiply(gn, u2, out=t2), out=x)
+                np.minimum(f, hi, out=u)
+                np.add(x, np.multiply(gn, u_b, out=t2), out=x)
             np.matmul(x_flat, agg2, out=nxt[:, A:2 * A, 0])
             if resp is not None:
                 np.multiply(self.a_out, x1, out=resp[i])
