@@ -155,12 +155,13 @@ class EventBatch:
         self.a_out, self.b_out = self.gov.a, self.gov.b
         self.record_units = record_units
         self._fuse()
-        # state: s (see _fuse), the governor states x = [x1, x2], and the ring of past
-        # demands (slots of times before 0 hold zeros: ring > largest lag + 1)
+        # state: s (see _fuse), the governor states x = [x1, x2] (x1 only when no unit's
+        # output sees x2), and the ring of past demands (slots of times before 0 hold zeros:
+        # ring > largest lag + 1)
         self.k = 0
         self.s = np.zeros((M, self.n_s))
         self.s[:, self.i_one] = 1.0
-        self.x = np.zeros((M, 2, len(g)))
+        self.x = np.zeros((M, self.n_x, len(g)))
         self.u_hist = np.zeros((M, self.ring, len(g)))
         self.rec = Records(h, A, L, [], [])
 
@@ -201,17 +202,20 @@ class EventBatch:
         nxt[:, iq] = 0.125 * h * rate
         self.B = B @ T
         # p_new = sum over the area's units of a x1 + b x2
+        # lag and inverter governors leave x2 unobserved (b = 0): a batch of only those
+        # steps x1 alone (x1 never sees x2), the same numbers in fewer calls
+        self.n_x = n_x = 2 if np.any(self.b_out != 0) else 1
         self.agg2 = np.concatenate([self.a_out[:, None] * self.agg,
-                                    self.b_out[:, None] * self.agg])
+                                    self.b_out[:, None] * self.agg][:n_x])
         # governor step on x = [x1, x2] (M, 2, G); phi is lower triangular (x1 does not see x2).
         # Every coefficient is spread to the full shape of what it multiplies: numpy's loop
         # over two equal contiguous arrays is the fast one (broadcasting costs more than the
         # arithmetic on arrays this small).
         G = len(self.g)
         full = lambda a, *shape: np.ascontiguousarray(np.broadcast_to(a, (M,) + shape))
-        self.P_d = full(np.stack([self.phi[:, 0, 0], self.phi[:, 1, 1]]), 2, G)
+        self.P_d = full(np.stack([self.phi[:, 0, 0], self.phi[:, 1, 1]])[:n_x], n_x, G)
         self.p10 = full(self.phi[:, 1, 0], G)
-        self.gn2, self.gp2 = full(self.gn.T, 2, G), full(self.gp.T, 2, G)
+        self.gn2, self.gp2 = full(self.gn.T[:n_x], n_x, G), full(self.gp.T[:n_x], n_x, G)
         self.K_full = full(self.K, G)
         # the demand K (−Δf − dead band)^± clipped to the limits; a unit out of the event
         # (tripped, unavailable) is clipped to zero
@@ -235,8 +239,8 @@ class EventBatch:
         B, agg2, K, ga, lo, hi = self.B, self.agg2, self.K_full, self.ga, self.lo, self.hi
         d, neg_d, deadband, delayed = self.d_full, -self.d_full, self.has_deadband, self.delayed
         P_d, p10, gn, gp = self.P_d, self.p10, self.gn2, self.gp2
-        x = self.x  # (M, 2, G), updated in place
-        x1, x2, x_flat = x[:, 0], x[:, 1], x.reshape(M, 2 * G)
+        x, two = self.x, self.n_x == 2  # x (M, n_x, G), updated in place
+        x1, x2, x_flat = x[:, 0], x[:, -1], x.reshape(M, self.n_x * G)
         ring, n_ring = self.u_hist, self.ring
         ring_flat, i_ring = ring.reshape(M, n_ring * G), self.i_ring
         # u[k − m], then u[k − m − 1] (each for x1 and x2 as broadcast views)
@@ -249,7 +253,7 @@ class EventBatch:
         hist[0, :, A:, 0] = self.s
         resp = np.empty((n, M, G)) if self.record_units else None
         f, t, u = np.empty((M, G)), np.empty((M, G)), np.empty((M, G))
-        u_b, t2 = u[:, None], np.empty((M, 2, G))  # u_b: u for x1 and x2 (a broadcast view)
+        u_b, t2 = u[:, None], np.empty(x.shape)  # u_b: u for x1 and x2 (a broadcast view)
         for i in range(n):
             k = self.k + i
             nxt = hist[i + 1]
@@ -262,9 +266,12 @@ class EventBatch:
             np.multiply(f, K, out=f)
             np.maximum(f, lo, out=f)
             # governors: x1 <- p00 x1 + gn0 u, x2 <- p10 x1 + p11 x2 + gn1 u
-            np.multiply(p10, x1, out=t)
-            np.multiply(P_d, x, out=x)
-            np.add(x2, t, out=x2)
+            if two:
+                np.multiply(p10, x1, out=t)
+                np.multiply(P_d, x, out=x)
+                np.add(x2, t, out=x2)
+            else:
+                np.multiply(P_d, x, out=x)
             if delayed:
                 np.minimum(f, hi, out=ring[:, k % n_ring])
                 ring_flat.take(i_ring[k % n_ring], axis=1, out=u_both_flat, mode="clip")
@@ -274,9 +281,10 @@ class EventBatch:
                 np.minimum(f, hi, out=u)
                 np.add(x, np.multiply(gn, u_b, out=t2), out=x)
             np.matmul(x_flat, agg2, out=nxt[:, A:2 * A, 0])
-            if resp is not None:
+            if resp is not None:  # y = a x1 + b x2 (b = 0 when x2 is not kept)
                 np.multiply(self.a_out, x1, out=resp[i])
-                np.add(resp[i], np.multiply(self.b_out, x2, out=t), out=resp[i])
+                if two:
+                    np.add(resp[i], np.multiply(self.b_out, x2, out=t), out=resp[i])
         self.s = hist[-1, :, A:, 0].copy()  # the state to go on from
         states = hist[:, :, A:, 0]
         # z = z~ + G1 p, as the swing step adds it
