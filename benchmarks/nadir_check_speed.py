@@ -29,15 +29,15 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).parent))
-from machine import cpu_model  # noqa: E402
-from simulate_speed import every_provider, mixed_governors  # noqa: E402
+from machine import cpu_model
+from simulate_speed import every_provider, mixed_governors
 
 ROOT = Path(__file__).resolve().parent.parent
 
 
 def _recording(calls: list, label: str):
     """Wrap check_instances so that every call of a solve is kept (inputs and outputs)."""
-    import optreserve.dynamics.check as check
+    from optreserve.dynamics import check
 
     orig = check.__dict__.get("_unwrapped", check.check_instances)
     check._unwrapped = orig
@@ -133,8 +133,8 @@ def replay(path: Path, repeat: int) -> None:
           f"{platform.release()}, Python {platform.python_version()}, numpy {np.__version__}; "
           f"optreserve from {Path(optreserve.__file__).parent}; load average "
           f"{os.getloadavg()[0]:.2f}\n")
-    print("| call | instances | check s (best of %d) | max rel diff dip | time | energy | "
-          "areas equal |" % repeat)
+    print(f"| call | instances | check s (best of {repeat}) | max rel diff dip | time | energy | "
+          "areas equal |")
     print("|---|---|---|---|---|---|---|")
     for c in calls:
         best, out = np.inf, None

@@ -207,7 +207,7 @@ class EventBatch:
         self.n_x = n_x = 2 if np.any(self.b_out != 0) else 1
         self.agg2 = np.concatenate([self.a_out[:, None] * self.agg,
                                     self.b_out[:, None] * self.agg][:n_x])
-        # governor step on x = [x1, x2] (M, 2, G); phi is lower triangular (x1 does not see x2).
+        # governor step on x = [x1, x2] (M, n_x, G); phi is lower triangular (x1 never sees x2).
         # Every coefficient is spread to the full shape of what it multiplies: numpy's loop
         # over two equal contiguous arrays is the fast one (broadcasting costs more than the
         # arithmetic on arrays this small).
@@ -240,7 +240,7 @@ class EventBatch:
         d, neg_d, deadband, delayed = self.d_full, -self.d_full, self.has_deadband, self.delayed
         P_d, p10, gn, gp = self.P_d, self.p10, self.gn2, self.gp2
         x, two = self.x, self.n_x == 2  # x (M, n_x, G), updated in place
-        x1, x2, x_flat = x[:, 0], x[:, -1], x.reshape(M, self.n_x * G)
+        x1, x2, x_flat = x[:, 0], x[:, -1], x.reshape(M, self.n_x * G)  # x2 used if two
         ring, n_ring = self.u_hist, self.ring
         ring_flat, i_ring = ring.reshape(M, n_ring * G), self.i_ring
         # u[k − m], then u[k − m − 1] (each for x1 and x2 as broadcast views)
