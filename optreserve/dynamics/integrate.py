@@ -76,8 +76,9 @@ def foh_blocks(F: np.ndarray, E: np.ndarray, h: float):
 
 @dataclass
 class Records:
-    """Samples on the step grid t_k = k h (k = 0..n): the stacked state s (see EventBatch) of
-    every step in blocks (one per run_to), and the responding units' power when recorded."""
+    """Samples on the step grid t_k = k h (k = 0..n): the state [p, Δf, δ, 1, q] of every step
+    (EventBatch._fuse) in blocks, one per run_to, and the responding units' power when
+    recorded."""
 
     h: float
     A: int
