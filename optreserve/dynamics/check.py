@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from optreserve.case.data import Case
-from optreserve.dynamics.events import simulate_events
+from optreserve.dynamics.events import event_nadirs, simulate_events
 from optreserve.dynamics.system import build_system
 
 CHECK_DURATION_S = 30.0
@@ -64,15 +64,10 @@ def check_instances(case: Case, inst_t, size_mw, area, trip, absent, gain, r_up,
             H[list(key)] = 0.0
             sysm = dataclasses.replace(sysm, stored_energy_mw_s=H)
         args = (sysm, size_mw[m], area[m], trip[m])
-        trs = simulate_events(*args, CHECK_DURATION_S, blocked=absent[m], record_units=False,
-                              times=[0.0])
-        late = [tr.nadir_time_s > CHECK_DURATION_S - 1.0 for tr in trs]
-        if any(late):
-            trs = simulate_events(*args, LONG_DURATION_S, blocked=absent[m],
-                                  record_units=False, times=[0.0])
-        dip[m] = [abs(tr.nadir_hz - f_n) for tr in trs]
-        when[m] = [tr.nadir_time_s for tr in trs]
-        where[m] = [tr.nadir_area for tr in trs]
+        nadir_hz, t_n, a_n = event_nadirs(*args, CHECK_DURATION_S, blocked=absent[m])
+        if (t_n > CHECK_DURATION_S - 1.0).any():
+            nadir_hz, t_n, a_n = event_nadirs(*args, LONG_DURATION_S, blocked=absent[m])
+        dip[m], when[m], where[m] = np.abs(nadir_hz - f_n), t_n, a_n
         w = m[want[m]]
         if len(w):
             dur = float(np.max(when[w])) + 0.5

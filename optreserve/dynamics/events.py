@@ -170,6 +170,24 @@ def simulate_events(sysm: System, size_mw, area, trip, duration_s: float | None 
     return out
 
 
+def event_nadirs(sysm: System, size_mw, area, trip, duration_s: float, blocked=None,
+                 damping_ratio: float = INTER_AREA_DAMPING_RATIO):
+    """Only the nadirs of simulate_events(..., duration_s, record_units=False): per event
+    (M,) nadir_hz, nadir_time_s, nadir_area, the same numbers, without the flows, RoCoF and
+    series the nadir does not need (the solve's check runs this for every candidate)."""
+    size = np.atleast_1d(np.asarray(size_mw, float))
+    M = len(size)
+    trip = np.broadcast_to(np.asarray(trip, np.int64), (M,))
+    area = np.broadcast_to(np.asarray(area, np.int64), (M,))
+    _check_inertia(sysm, sysm.area_inertia_after(trip), trip)
+    batch = EventBatch(sysm, size, area, trip, blocked, damping_ratio, record_units=False)
+    batch.run_to(float(duration_s))
+    df, _, _ = batch.rec.arrays()
+    sigma = np.where(size >= 0, 1.0, -1.0)
+    v_n, t_n, a_n = nadirs(-sigma[None, :, None] * df, batch.h)
+    return sysm.f_n - sigma * v_n, t_n, a_n
+
+
 def simulate_event(sysm: System, size_mw: float, area: int, trip: int = -1,
                    duration_s: float = DURATION_S, method: str = "auto", times=None,
                    damping_ratio: float = INTER_AREA_DAMPING_RATIO) -> Trajectory:

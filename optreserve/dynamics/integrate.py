@@ -15,16 +15,18 @@ integration of the same equations in tests/test_dynamics_models.py). The step is
 smaller when the droop loop of an area is fast (see step_size), and always divides 10 ms so
 that the output times fall on the grid.
 
-Per step this costs a few whole-array operations on (M, G) arrays (G responding units): no
+Per step this costs about a dozen whole-array calls on (M, G) arrays (G responding units): no
 Jacobian, no step-size control, no Python loop over units or events.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cache
 
 import numpy as np
 from scipy.linalg import expm
+from threadpoolctl import ThreadpoolController
 
 from optreserve.dynamics.system import System, swing_matrices, tie_damping
 
@@ -48,6 +50,13 @@ def step_size(sysm: System, live: np.ndarray, H_a: np.ndarray) -> float:
     return STEP_S / int(np.ceil(STEP_S / h - 1e-9))
 
 
+@cache
+def _blas() -> ThreadpoolController:
+    """The BLAS libraries loaded (scipy's among them, since expm is imported): found once,
+    a search of every loaded library takes a few milliseconds."""
+    return ThreadpoolController()
+
+
 def foh_blocks(F: np.ndarray, E: np.ndarray, h: float):
     """Exact step of x' = F x + E w(t) for w linear over the step (leading axis M):
     x_{k+1} = Phi x_k + G0 w_k + G1 (w_{k+1} - w_k). Van Loan: expm of
@@ -57,30 +66,47 @@ def foh_blocks(F: np.ndarray, E: np.ndarray, h: float):
     Z[:, :S, :S] = F * h
     Z[:, :S, S:S + A] = E * h
     Z[:, S:S + A, S + A:] = np.eye(A) * h
-    X = expm(Z)
+    # One BLAS thread: on these ~12 x 12 matrices scipy's threaded BLAS only waits for its
+    # second thread, which on a machine whose other core is busy took 5-10 ms per matrix
+    # (against 0.01 ms single-threaded; the result is the same bit for bit).
+    with _blas().limit(limits=1, user_api="blas"):
+        X = expm(Z)
     return X[:, :S, :S], X[:, :S, S:S + A], X[:, :S, S + A:] / h
 
 
 @dataclass
 class Records:
-    """Samples on the step grid t_k = k h (k = 0..n): Δf (n+1, M, A), δ (n+1, M, L), and the
-    responding units' power (n+1, M, G) when recorded."""
+    """Samples on the step grid t_k = k h (k = 0..n): the state [p, Δf, δ, 1, q] of every step
+    (EventBatch._fuse) in blocks, one per run_to, and the responding units' power when
+    recorded."""
 
     h: float
-    df: list
-    delta: list
-    resp: list
+    A: int
+    L: int
+    states: list  # blocks (n_i, M, n_s)
+    resp: list  # blocks (n_i, M, G)
 
     def arrays(self):
-        df = np.stack(self.df)
-        delta = np.stack(self.delta)
-        resp = np.stack(self.resp) if self.resp else None
-        return df, delta, resp
+        """Δf (n+1, M, A), δ (n+1, M, L), responding units' power (n+1, M, G) or None."""
+        H = self.states[0] if len(self.states) == 1 else np.concatenate(self.states)
+        A, L = self.A, self.L
+        # contiguous copies: the flows and nadirs computed from them as before, bit for bit
+        df = np.ascontiguousarray(H[:, :, A:2 * A])
+        delta = np.ascontiguousarray(H[:, :, 2 * A:2 * A + L])
+        if not self.resp:
+            return df, delta, None
+        return df, delta, (self.resp[0] if len(self.resp) == 1 else np.concatenate(self.resp))
 
 
 class EventBatch:
     """M events of one system integrated together; `run_to(duration)` extends the run
-    (the state is kept, so a run that has not settled can simply go on)."""
+    (the state is kept, so a run that has not settled can simply go on).
+
+    A step is a dozen whole-array calls. On the small arrays of one period's events each costs
+    about a microsecond whatever its size, so their number sets the cost: everything linear
+    in the swing state is one batched matrix-vector product (B in _fuse), the new mechanical
+    power one matrix product, the governors a few elementwise calls, all into preallocated
+    buffers; the samples go straight into one array per run_to."""
 
     def __init__(self, sysm: System, size_mw, area, trip, blocked=None,
                  damping_ratio: float = 0.05, record_units: bool = True,
@@ -128,62 +154,152 @@ class EventBatch:
         self.delayed = bool(len(g) and (self.lag.max() > 0 or np.abs(self.gp).max() > 0))
         self.ring = int(self.lag.max(initial=0)) + 2
         self.a_out, self.b_out = self.gov.a, self.gov.b
-        # state
-        self.k = 0
-        self.z = np.zeros((M, A + L))
-        self.x = np.zeros((M, len(g), 2))
-        self.p = np.zeros((M, A))
-        self.u_hist = np.zeros((self.ring, M, len(g)))
-        self.rate_prev = None
         self.record_units = record_units
-        self.rec = Records(h, [self.z[:, :A].copy()], [self.z[:, A:].copy()],
-                           [np.zeros((M, len(g)))] if record_units else [])
+        self._fuse()
+        # state: s (see _fuse), the governor states x = [x1, x2] (x1 only when no unit's
+        # output sees x2), and the ring of past demands (slots of times before 0 hold zeros:
+        # ring > largest lag + 1)
+        self.k = 0
+        self.s = np.zeros((M, self.n_s))
+        self.s[:, self.i_one] = 1.0
+        self.x = np.zeros((M, self.n_x, len(g)))
+        self.u_hist = np.zeros((M, self.ring, len(g)))
+        self.rec = Records(h, A, L, [], [])
+
+    def _fuse(self) -> None:
+        """The per-step linear algebra as one batched matrix-vector product B s and one
+        matrix product for the new mechanical power.
+
+        The stacked state is s = [p (A), z~ (A + L), 1, q (A)] with z~ = z − G1 p (z = [Δf, δ])
+        and q = h/8 · the rate of Δf at the last step. B (M, A + n_s, n_s) maps s_k to
+        [−Δf at mid-step (A); s_{k+1} with p_{k+1} = 0]:
+        * the mid-step frequency Δf + h/2 rate + h/8 (rate − last rate) = Δf + 5h/8 rate − q;
+        * the swing step z_{k+1} = Φ z + G0 (p − P_e) + G1 (p_{k+1} − p): its G1 p_{k+1} is
+          the part z~ leaves out, so z~_{k+1} is linear in s_k (the constant on the entry 1);
+        * q_{k+1} = h/8 · rate at step k.
+        p_{k+1} = [x1, x2] @ agg2 then fills the first A entries. Only the order of the
+        additions differs from the step written out term by term."""
+        M, A, L = self.M, self.A, self.L
+        S, h = A + L, self.h
+        ip, iz, one, iq = slice(0, A), slice(A, A + S), A + S, slice(A + S + 1, 2 * A + S + 1)
+        n_s = 2 * A + S + 1
+        self.n_s, self.i_one = n_s, one
+        FA, EA = self.F[:, :A, :], self.E[:, :A, :]
+        # T: s~ -> [p, z, 1, q] (z = z~ + G1 p)
+        T = np.broadcast_to(np.eye(n_s), (M, n_s, n_s)).copy()
+        T[:, iz, ip] = self.G1
+        rate = np.zeros((M, A, n_s))  # rate of Δf as a function of [p, z, 1, q]
+        rate[:, :, iz], rate[:, :, ip] = FA, EA
+        rate[:, :, one] = -np.einsum("mab,mb->ma", EA, self.P_e)
+        B = np.zeros((M, A + n_s, n_s))
+        B[:, :A] = -0.625 * h * rate
+        B[:, :A, A:2 * A] -= np.eye(A)
+        B[:, :A, iq] += np.eye(A)
+        nxt = B[:, A:]
+        nxt[:, iz, iz] = self.Phi
+        nxt[:, iz, ip] = self.G0 - self.G1
+        nxt[:, iz, one] = -np.einsum("mia,ma->mi", self.G0, self.P_e)
+        nxt[:, one, one] = 1.0
+        nxt[:, iq] = 0.125 * h * rate
+        self.B = B @ T
+        # p_new = sum over the area's units of a x1 + b x2
+        # lag and inverter governors leave x2 unobserved (b = 0): a batch of only those
+        # steps x1 alone (x1 never sees x2), the same numbers in fewer calls
+        self.n_x = n_x = 2 if np.any(self.b_out != 0) else 1
+        self.agg2 = np.concatenate([self.a_out[:, None] * self.agg,
+                                    self.b_out[:, None] * self.agg][:n_x])
+        # governor step on x = [x1, x2] (M, n_x, G); phi is lower triangular (x1 never sees x2).
+        # Every coefficient is spread to the full shape of what it multiplies: numpy's loop
+        # over two equal contiguous arrays is the fast one (broadcasting costs more than the
+        # arithmetic on arrays this small).
+        G = len(self.g)
+        full = lambda a, *shape: np.ascontiguousarray(np.broadcast_to(a, (M,) + shape))
+        self.P_d = full(np.stack([self.phi[:, 0, 0], self.phi[:, 1, 1]])[:n_x], n_x, G)
+        self.p10 = full(self.phi[:, 1, 0], G)
+        self.gn2, self.gp2 = full(self.gn.T[:n_x], n_x, G), full(self.gp.T[:n_x], n_x, G)
+        self.K_full = full(self.K, G)
+        # the demand K (−Δf − dead band)^± clipped to the limits; a unit out of the event
+        # (tripped, unavailable) is clipped to zero
+        self.lo = -self.dn * self.active
+        self.hi = self.up * self.active
+        self.has_deadband = bool(np.any(self.d > 0))
+        self.d_full = full(self.d, G)
+        # ring slots of the demands u[k − m] and u[k − m − 1], per step modulo the ring, as
+        # flat (slot, unit) indices of one take
+        slots, cols = np.arange(self.ring)[:, None], np.arange(G)
+        now = ((slots - self.lag) % self.ring) * G + cols
+        prev = ((slots - self.lag - 1) % self.ring) * G + cols
+        self.i_ring = np.concatenate([now, prev], axis=1)
 
     def run_to(self, duration_s: float) -> None:
         n_end = round(duration_s / self.h)
-        A = self.A
-        Phi, G0, G1 = self.Phi, self.G0, self.G1
-        FA, EA = self.F[:, :A, :], self.E[:, :A, :]
-        K, d, up, dn, ga, act = self.K, self.d, self.up, self.dn, self.ga, self.active
-        p00, p10, p11 = self.phi[:, 0, 0], self.phi[:, 1, 0], self.phi[:, 1, 1]
-        gn0, gn1, gp0, gp1 = self.gn[:, 0], self.gn[:, 1], self.gp[:, 0], self.gp[:, 1]
-        a_out, b_out, agg = self.a_out, self.b_out, self.agg
-        cols = np.arange(len(self.g))
-        z, x1, x2, p = self.z, self.x[:, :, 0].copy(), self.x[:, :, 1].copy(), self.p
-        P_e, half, eighth = self.P_e, 0.5 * self.h, 0.125 * self.h
-        rec = self.rec
-        rate_prev = self.rate_prev
-        for k in range(self.k, n_end):
-            # demand held over the step: droop on the frequency predicted at mid-step (Taylor
-            # to second order, the curvature from the last two rates)
-            rate = np.einsum("mas,ms->ma", FA, z) + np.einsum("mab,mb->ma", EA, p - P_e)
-            if rate_prev is None:
-                rate_prev = rate
-            f_mid = (z[:, :A] + half * rate + eighth * (rate - rate_prev))[:, ga]
-            rate_prev = rate
-            raw = K * np.maximum(np.abs(f_mid) - d, 0.0)
-            u = np.where(f_mid < 0, np.minimum(raw, up), -np.minimum(raw, dn)) * act
-            if self.delayed:
-                self.u_hist[k % self.ring] = u
-                # slots of times before 0 still hold zeros (ring > largest lag + 1)
-                u_now = self.u_hist[(k - self.lag) % self.ring, :, cols].T
-                u_prev = self.u_hist[(k - self.lag - 1) % self.ring, :, cols].T
-                x1, x2 = (p00 * x1 + gn0 * u_now + gp0 * u_prev,
-                          p10 * x1 + p11 * x2 + gn1 * u_now + gp1 * u_prev)
+        n = n_end - self.k
+        if n <= 0:
+            return
+        M, A, G, n_s = self.M, self.A, len(self.g), self.n_s
+        B, agg2, K, ga, lo, hi = self.B, self.agg2, self.K_full, self.ga, self.lo, self.hi
+        d, neg_d, deadband, delayed = self.d_full, -self.d_full, self.has_deadband, self.delayed
+        P_d, p10, gn, gp = self.P_d, self.p10, self.gn2, self.gp2
+        x, two = self.x, self.n_x == 2  # x (M, n_x, G), updated in place
+        x1, x2, x_flat = x[:, 0], x[:, -1], x.reshape(M, self.n_x * G)  # x2 used if two
+        ring, n_ring = self.u_hist, self.ring
+        ring_flat, i_ring = ring.reshape(M, n_ring * G), self.i_ring
+        # u[k − m], then u[k − m − 1] (each for x1 and x2 as broadcast views)
+        u_both = np.empty((M, 2, G))
+        u_now, u_prev, u_both_flat = u_both[:, :1], u_both[:, 1:], u_both.reshape(M, 2 * G)
+        if self.k == 0:  # no last rate yet: q = h/8 · the rate now (no curvature term)
+            self.s[:, self.i_one + 1:] = (B[:, A + self.i_one + 1:] @ self.s[..., None])[..., 0]
+        # rows of work: [−Δf at mid-step (A), s (n_s)]; step i's s in hist[i, :, A:]
+        hist = np.empty((n + 1, M, A + n_s, 1))
+        hist[0, :, A:, 0] = self.s
+        resp = np.empty((n, M, G)) if self.record_units else None
+        f, t, u = np.empty((M, G)), np.empty((M, G)), np.empty((M, G))
+        u_b, t2 = u[:, None], np.empty(x.shape)  # u_b: u for x1 and x2 (a broadcast view)
+        for i in range(n):
+            k = self.k + i
+            nxt = hist[i + 1]
+            np.matmul(B, hist[i, :, A:], out=nxt)
+            # demand held over the step: droop on the frequency predicted at mid-step
+            nxt[:, :A, 0].take(ga, axis=1, out=f, mode="clip")
+            if deadband:
+                np.minimum(np.maximum(f, neg_d, out=t), d, out=t)
+                np.subtract(f, t, out=f)
+            np.multiply(f, K, out=f)
+            np.maximum(f, lo, out=f)
+            # governors: x1 <- p00 x1 + gn0 u, x2 <- p10 x1 + p11 x2 + gn1 u
+            if two:
+                np.multiply(p10, x1, out=t)
+                np.multiply(P_d, x, out=x)
+                np.add(x2, t, out=x2)
             else:
-                x1, x2 = p00 * x1 + gn0 * u, p10 * x1 + p11 * x2 + gn1 * u
-            y = a_out * x1 + b_out * x2
-            p_new = y @ agg
-            z = (np.einsum("mij,mj->mi", Phi, z) + np.einsum("mia,ma->mi", G0, p - P_e)
-                 + np.einsum("mia,ma->mi", G1, p_new - p))
-            p = p_new
-            rec.df.append(z[:, :A])
-            rec.delta.append(z[:, A:])
-            if self.record_units:
-                rec.resp.append(y)
-        self.k = max(self.k, n_end)
-        self.z, self.p, self.rate_prev = z, p, rate_prev
-        self.x = np.stack([x1, x2], axis=-1)
+                np.multiply(P_d, x, out=x)
+            if delayed:
+                np.minimum(f, hi, out=ring[:, k % n_ring])
+                ring_flat.take(i_ring[k % n_ring], axis=1, out=u_both_flat, mode="clip")
+                np.add(x, np.multiply(gn, u_now, out=t2), out=x)
+                np.add(x, np.multiply(gp, u_prev, out=t2), out=x)
+            else:
+                np.minimum(f, hi, out=u)
+                np.add(x, np.multiply(gn, u_b, out=t2), out=x)
+            np.matmul(x_flat, agg2, out=nxt[:, A:2 * A, 0])
+            if resp is not None:  # y = a x1 + b x2 (b = 0 when x2 is not kept)
+                np.multiply(self.a_out, x1, out=resp[i])
+                if two:
+                    np.add(resp[i], np.multiply(self.b_out, x2, out=t), out=resp[i])
+        self.s = hist[-1, :, A:, 0].copy()  # the state to go on from
+        states = hist[:, :, A:, 0]
+        # z = z~ + G1 p, as the swing step adds it
+        # (one matrix product per event over all steps: einsum's loop here cost milliseconds)
+        states[:, :, A:self.i_one] += np.matmul(states[:, :, :A].transpose(1, 0, 2),
+                                                self.G1.transpose(0, 2, 1)).transpose(1, 0, 2)
+        if not self.rec.states:  # the samples at t = 0
+            self.rec.states.append(states[:1])
+            if resp is not None:
+                self.rec.resp.append(np.zeros((1, M, G)))
+        self.rec.states.append(states[1:])
+        if resp is not None:
+            self.rec.resp.append(resp)
+        self.k = n_end
 
     @property
     def duration_s(self) -> float:
