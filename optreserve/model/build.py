@@ -48,6 +48,7 @@ class ModelInfo:
     change_cols: np.ndarray  # (block, unit) flat indices that carry a change indicator
     elastic: bool
     flows: bool = True  # the program has post-event flow rows (which depend on x_hat)
+    guide: object = None  # the nadir rows' guide (model/nadir.py) this program was built with
 
     @property
     def ev(self) -> Events:  # instances in the Events shape

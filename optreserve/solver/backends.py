@@ -89,10 +89,13 @@ def _options(h, time_limit, mip_gap, verbose, log_file=None):
 
 
 def solve_highs(lp: LinearProgram, time_limit=None, mip_gap=None, verbose=False,
-                want_duals=False, start: np.ndarray | None = None) -> Outcome:
-    """Load the whole matrix into highspy with one passModel call and solve."""
+                want_duals=False, start: np.ndarray | None = None, on_highs=None) -> Outcome:
+    """Load the whole matrix into highspy with one passModel call and solve. on_highs: called
+    with the Highs object before it runs (so that another thread can stop it)."""
     t0 = time.perf_counter()
     h = new_highs()
+    if on_highs is not None:
+        on_highs(h)
     log = _new_log()
     try:
         return _solve_highs(h, lp, log, t0, time_limit, mip_gap, verbose, want_duals, start)

@@ -111,8 +111,8 @@ def real_cost(lp: LinearProgram, hz: Horizon, x: np.ndarray) -> float:
 
 
 def optimal_cost(case, hz: Horizon, info: ModelInfo, start: np.ndarray | None,
-                 time_limit: float | None = None, nadir_scale=None, base_lp=None
-                 ) -> tuple[float, np.ndarray | None, float, bool]:
+                 time_limit: float | None = None, nadir_scale=None, base_lp=None,
+                 on_highs=None) -> tuple[float, np.ndarray | None, float, bool]:
     """Real cost of the optimum of the case stacked as hz at PRICE_MIP_GAP (flow rows left
     out while no link overloads, as in the solve; the dead-band fixed point re-run from the
     base solve's guesses). Returns (cost, solution, solver seconds, whether the solution's
@@ -130,7 +130,7 @@ def optimal_cost(case, hz: Horizon, info: ModelInfo, start: np.ndarray | None,
         lp, inf = build_model(case, x_hat=x_hat, hz=hz, nadir_scale=nadir_scale, flows=flows)
         st = carry_start(*last, lp) if last is not None else None
         out = solve_program(lp, engine="highspy", start=st, mip_gap=PRICE_MIP_GAP,
-                            time_limit=time_limit)
+                            time_limit=time_limit, on_highs=on_highs)
         solve_s += out.solve_time_s
         if out.status == "infeasible":
             return float("inf"), None, solve_s, flows
@@ -191,14 +191,16 @@ def events_still_met(case, hz: Horizon, info: ModelInfo, lp: LinearProgram, x: n
 
 def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
                        step_mw: float | None = None, time_limit: float | None = None,
-                       nadir_scale=None, lp: LinearProgram | None = None, out=None):
+                       nadir_scale=None, lp: LinearProgram | None = None, out=None,
+                       ahead: dict | None = None):
     """Incremental cost per MW and hour of each event instance and of each area's own-reserve
     requirement (where it has one), by re-solving with that one quantity grown by its step.
     Returns (event (M,), reserve (T, A), seconds spent solving, seconds in all); NaN where
     not computed (a trip whose size is a dispatch decision, an area without requirement, a
     re-solve without answer), inf where the grown problem has no allocation. lp/out: the
     solve's program and outcome; its optimum is the base when HiGHS proved it within
-    PRICE_MIP_GAP, else the base is solved again at that gap."""
+    PRICE_MIP_GAP, else the base is solved again at that gap. ahead: {instance: started
+    re-solve} begun while the solve ran (solver/ahead.py), used instead of solving again."""
     t0 = time.perf_counter()
     M = len(hz.dP)
     T, A = hz.own.shape
@@ -247,8 +249,14 @@ def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
             continue
         jobs.append((reserve, (ta[k], aa[k]), grown, r_steps[k] * hz.hours[ta[k]]))
 
+    ahead = ahead or {}
+    done = {m: ahead[m].result() for m in [j[1] for j in jobs if j[0] is event]
+            if m in ahead}  # begun while the solve ran: the same program, no start
+
     def resolve(job):
-        return optimal_cost(case, job[2], info0, x0, time_limit, nadir_scale, lp0)
+        if job[0] is event and job[1] in done:
+            return done[job[1]]
+        return optimal_cost(case, job[2], info0, None, time_limit, nadir_scale)
 
     for job, (cost, _, s, _) in zip(jobs, _map(resolve, jobs)):
         solve_s += s
@@ -294,11 +302,13 @@ def base_is_proven(out) -> bool:
 
 def attach_incremental(result, case, hz: Horizon, info: ModelInfo, x: np.ndarray,
                        step_mw: float | None = None, time_limit: float | None = None,
-                       nadir_scale=None, lp: LinearProgram | None = None, out=None):
+                       nadir_scale=None, lp: LinearProgram | None = None, out=None,
+                       ahead: dict | None = None):
     """Add incremental_cost_per_mw_h to the result's events and
     reserve_incremental_cost_per_mw_h to its prices; returns (build s, solve s)."""
     event, reserve, solve_s, total_s = incremental_prices(case, hz, info, x, step_mw,
-                                                          time_limit, nadir_scale, lp, out)
+                                                          time_limit, nadir_scale, lp, out,
+                                                          ahead)
     result.events["incremental_cost_per_mw_h"] = event
     if result.prices is not None:
         result.prices["reserve_incremental_cost_per_mw_h"] = reserve.reshape(-1)

@@ -19,6 +19,7 @@ from optreserve.output.results import Result
 from optreserve.solver.backends import Outcome, solve_program
 from optreserve.solver.diagnose import diagnose
 from optreserve.solver.nadir_loop import (
+    NADIR_LOOSEN,
     _nadir_final,
     _nadir_on_infeasible,
     _nadir_round,
@@ -78,10 +79,28 @@ def solve(case: Case, engine: str = "auto", time_limit: float | None = None,
                opts=dict(time_limit=time_limit, mip_gap=mip_gap, verbose=verbose),
                nadir=_nadir_state(case), t_build=time.perf_counter() - t_start,
                flows=not lazy_flows(case, hz))
-    final = None
-    while final is None:  # dead-band passes and nadir rounds until one answer stands
-        final = _dead_band_pass(run)
-    return _finish(run, *final, incremental=incremental, price_step=price_step)
+    if incremental and extend is None and not relax:
+        run.ahead = _ahead(case, hz, time_limit, price_step)
+    try:
+        final = None
+        while final is None:  # dead-band passes and nadir rounds until one answer stands
+            final = _dead_band_pass(run)
+        return _finish(run, *final, incremental=incremental, price_step=price_step)
+    finally:
+        if run.ahead is not None:
+            run.ahead.close()
+
+
+def _ahead(case: Case, hz: Horizon, time_limit, price_step):
+    """Price re-solves begun ahead (solver/ahead.py): on cases with a nadir limit (whose last
+    candidate comes after a loosening), with a second core to run them."""
+    from optreserve.solver.incremental import price_threads
+
+    if case.limits.max_nadir_deviation_hz is None or price_threads() < 2:
+        return None
+    from optreserve.solver.ahead import Ahead
+
+    return Ahead(case, hz, time_limit, price_step)
 
 
 # ------------------------------------------------------------------ the solve loop's steps
@@ -112,6 +131,7 @@ class _Run:
     timed_out: bool = False  # stopped by the time budget before the passes converged
     flows: bool = True  # flow rows in the program (False: left out until a link overloads)
     last: tuple | None = None  # (lp, x) of the last pass solved: the next pass's warm start
+    ahead: object = None  # solver/ahead.py: a price re-solve begun beside the last candidate
 
 
 def _dead_band_pass(run: _Run):
@@ -136,6 +156,7 @@ def _build_pass(run: _Run):
                                            if run.iterations > 1 else ""))
     lp, info = build_model(run.case, x_hat=run.x_hat, relax=run.relax, hz=run.hz,
                            nadir_scale=run.nadir["guide"], flows=run.flows)
+    info.guide = snapshot(run.nadir["guide"])
     if run.extend is not None:
         run.extend(lp, info)
     run.t_build += time.perf_counter() - t0
@@ -163,6 +184,10 @@ def _solve_pass(run: _Run, lp: LinearProgram, info: ModelInfo) -> Outcome:
     start = carry_start(*run.last, lp) if run.last is not None else None
     if start is None and run.warm is not None and not h:
         start = run.warm(lp, info)
+    g = run.nadir["guide"]
+    if (run.ahead is not None and h and not g.cuts and not g.relaxed
+            and run.nadir["loosened"] >= NADIR_LOOSEN):
+        run.ahead.start(info, h[-1])  # after the last loosening: likely the answer's program
     out = solve_program(lp, engine=run.engine, want_duals=not lp.is_mip, start=start,
                         **run.opts)
     if out.x is not None:
@@ -277,11 +302,20 @@ def _finish(run: _Run, lp: LinearProgram, info: ModelInfo, out: Outcome, points,
         with clock("incremental_prices"):  # the MILP re-solves at the grown event sizes
             # at the nadir rows the solve ended with (loosened scale, simulation cuts)
             attach_incremental(result, case, run.hz, info, out.x, price_step, run.time_limit,
-                               nadir["guide"], lp, out)
+                               info.guide if info.guide is not None else nadir["guide"], lp,
+                               out, run.ahead.for_answer(info) if run.ahead else None)
     result.timings_s.update(read=case.read_time_s, build=run.t_build, solve=run.t_solve,
                             **clock, write=0.0)
     close_total(result.timings_s, time.perf_counter() - run.t_start + case.read_time_s)
     return result
+
+
+def snapshot(guide):
+    """A copy of the nadir rows' guide as it stands (the loop changes its own later)."""
+    from optreserve.model.nadir import NadirGuide
+
+    return NadirGuide(scale=None if guide.scale is None else np.array(guide.scale, copy=True),
+                      relaxed=guide.relaxed, cuts=list(guide.cuts))
 
 
 def lazy_flows(case: Case, hz: Horizon) -> bool:
