@@ -25,7 +25,6 @@ from dataclasses import dataclass
 from functools import cache
 
 import numpy as np
-from scipy.linalg import expm
 from threadpoolctl import ThreadpoolController
 
 from optreserve.dynamics.system import System, swing_matrices, tie_damping
@@ -50,9 +49,46 @@ def step_size(sysm: System, live: np.ndarray, H_a: np.ndarray) -> float:
     return STEP_S / int(np.ceil(STEP_S / h - 1e-9))
 
 
+# Pade (13, 13) coefficients of exp and the 1-norm up to which it is accurate in double
+# precision without scaling (Higham, "The scaling and squaring method for the matrix
+# exponential revisited", SIAM J. Matrix Anal. Appl. 26 (2005), table 2.3 and eq. 2.5).
+_PADE13 = (64764752532480000.0, 32382376266240000.0, 7771770303897600.0,
+           1187353796428800.0, 129060195264000.0, 10559470521600.0, 670442572800.0,
+           33522128640.0, 1323241920.0, 40840800.0, 960960.0, 16380.0, 182.0, 1.0)
+_THETA13 = 5.371920351148152
+
+
+def expm(Z: np.ndarray) -> np.ndarray:
+    """exp of each matrix of the stack Z (..., n, n): Pade (13, 13) after scaling each by
+    2^-s to a 1-norm within _THETA13, then squared s times (Higham 2005, algorithm 2.3 with
+    the degree-13 branch only). numpy only: scipy.linalg's import alone cost a snapshot
+    solve 30-60 ms; tests/test_dynamics_models.py checks it against scipy.linalg.expm."""
+    A = np.asarray(Z, float)
+    n = A.shape[-1]
+    norm = np.abs(A).sum(axis=-2).max(axis=-1)
+    with np.errstate(divide="ignore"):
+        s = np.maximum(0, np.ceil(np.log2(norm / _THETA13))).astype(np.int64)
+    s = np.where(norm > 0, s, 0)
+    A = A / np.ldexp(1.0, s)[..., None, None]
+    b = _PADE13
+    eye = np.broadcast_to(np.eye(n), A.shape)
+    A2 = A @ A
+    A4 = A2 @ A2
+    A6 = A4 @ A2
+    U = A @ (A6 @ (b[13] * A6 + b[11] * A4 + b[9] * A2)
+             + b[7] * A6 + b[5] * A4 + b[3] * A2 + b[1] * eye)
+    V = (A6 @ (b[12] * A6 + b[10] * A4 + b[8] * A2)
+         + b[6] * A6 + b[4] * A4 + b[2] * A2 + b[0] * eye)
+    X = np.linalg.solve(V - U, V + U)
+    for k in range(int(s.max(initial=0))):  # each matrix squared its own s times
+        sq = (s > k)[..., None, None]
+        X = np.where(sq, X @ X, X)
+    return X
+
+
 @cache
 def _blas() -> ThreadpoolController:
-    """The BLAS libraries loaded (scipy's among them, since expm is imported): found once,
+    """The BLAS libraries loaded (numpy's): found once,
     a search of every loaded library takes a few milliseconds."""
     return ThreadpoolController()
 
