@@ -101,7 +101,8 @@ def _check_series(folder, series_raw, units, areas, links, events, settings, col
         ref = sets[names[0]]
         for other in names[1:]:
             if sets[other] != ref:
-                diff = sorted(ref.symmetric_difference(sets[other]), key=lambda p: keys[p][1])
+                diff = sorted(ref.symmetric_difference(sets[other]),  # ties by label: one answer
+                              key=lambda p: (keys[p][1], p))
                 ref_file = series_raw[names[0]].attrs.get("file", f"{names[0]}_by_period.csv")
                 col.error(series_raw[other].attrs.get(
                     "file", str(folder / f"{other}_by_period.csv")), "periods differ from "
