@@ -2,14 +2,18 @@
 
 Each case folder is read in a fresh process, so ru_maxrss is the peak of that read alone (plus
 the interpreter and the imported libraries, reported separately as `base_mb`). With --trace the
-largest live allocations at the traced peak are listed (tracemalloc slows the read down a lot,
-so its times say nothing).
+traced peak and the largest allocations still alive after the read are listed (tracemalloc
+slows the read down a lot, so its times say nothing).
 
     python -m optreserve generate --units 300 --areas 5 --links 8 --events 10 \\
         --periods 96 --days 28 --hold-periods 96 --parquet --out /tmp/d28
     python benchmarks/read_memory.py /tmp/d28 /tmp/d91            # read only
     python benchmarks/read_memory.py /tmp/d28 --prepare           # read, then prepare
     python benchmarks/read_memory.py /tmp/d28 --trace             # where the peak is
+    python benchmarks/read_memory.py /tmp/d365 --solve 2          # read, then the whole run
+
+The generation is left out on purpose: `optreserve generate` of a year peaks at gigabytes
+itself, which horizon_blocks.py counts in its main process's peak.
 """
 
 from __future__ import annotations
@@ -30,8 +34,8 @@ def _rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux: KiB
 
 
-def one(folder: str, prepare: bool, trace: bool) -> dict:
-    import optreserve  # noqa: F401 - imports counted in base_mb, not in the read
+def one(folder: str, prepare: bool, trace: bool, solve: int) -> dict:
+    import optreserve  # imports counted in base_mb, not in the read
     from optreserve.case.reader import load_case
     from optreserve.model import horizon
 
@@ -51,6 +55,13 @@ def one(folder: str, prepare: bool, trace: bool) -> dict:
         horizon.prepare(case)
         out["prepare_s"] = round(time.perf_counter() - t0, 2)
         out["peak_prepare_mb"] = round(_rss_mb())
+    if solve:  # the whole run after the read (block by block on `solve` Dask workers)
+        t0 = time.perf_counter()
+        res = optreserve.solve(case, workers=solve if solve > 1 else None)
+        out.update(solve_s=round(time.perf_counter() - t0, 2), status=res.status,
+                   cost=res.objective_total, peak_solve_mb=round(_rss_mb()),
+                   peak_worker_mb=round(resource.getrusage(resource.RUSAGE_CHILDREN)
+                                        .ru_maxrss / 1024.0))
     if trace:
         import tracemalloc
         _, peak = tracemalloc.get_traced_memory()
@@ -69,14 +80,17 @@ def main() -> None:
     ap.add_argument("folders", nargs="+")
     ap.add_argument("--prepare", action="store_true", help="also run model.horizon.prepare")
     ap.add_argument("--trace", action="store_true", help="tracemalloc: largest live blocks")
+    ap.add_argument("--solve", type=int, default=0, metavar="WORKERS",
+                    help="then solve the case (as horizon_blocks.py, without the generation "
+                    "in the same process) on WORKERS Dask workers (1: in this process)")
     ap.add_argument("--one", action="store_true", help=argparse.SUPPRESS)  # the child process
     a = ap.parse_args()
     if a.one:
-        print(json.dumps(one(a.folders[0], a.prepare, a.trace)))
+        print(json.dumps(one(a.folders[0], a.prepare, a.trace, a.solve)))
         return
     for f in a.folders:  # a fresh process per case: its peak is its own
         cmd = [sys.executable, __file__, f, "--one"] + (["--prepare"] if a.prepare else []) + (
-            ["--trace"] if a.trace else [])
+            ["--trace"] if a.trace else []) + ["--solve", str(a.solve)]
         r = subprocess.run(cmd, capture_output=True, text=True, check=False)
         if r.returncode:
             print(r.stderr, file=sys.stderr)
