@@ -236,6 +236,10 @@ def _read_parquet(path: Path, label: str, col: _Collector) -> _Table | None:
         columns = [_coded_column(pf.read(columns=[name], use_threads=False).column(0))
                    for name in names]
         n = pf.metadata.num_rows
+        del pf
+        # Arrow's allocator keeps freed buffers for reuse; the rest of the run never reads
+        # Parquet again, so they go back now (tens of MB after a year of quarter-hours)
+        pa.default_memory_pool().release_unused()
     except Exception as exc:  # noqa: BLE001 - pyarrow raises several kinds for a bad file
         col.error(label, f"cannot be read as Parquet ({type(exc).__name__}: {exc})"[:300])
         return None
