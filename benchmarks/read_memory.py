@@ -20,6 +20,8 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
+import platform
 import resource
 import subprocess
 import sys
@@ -28,6 +30,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "benchmarks"))  # machine.py
 
 
 def _rss_mb() -> float:
@@ -88,6 +91,10 @@ def main() -> None:
     if a.one:
         print(json.dumps(one(a.folders[0], a.prepare, a.trace, a.solve)))
         return
+    from machine import cpu_model
+
+    print(f"machine: {cpu_model()}, {os.cpu_count()} cores, Python "
+          f"{platform.python_version()}, load average {os.getloadavg()[0]:.1f} at start")
     for f in a.folders:  # a fresh process per case: its peak is its own
         cmd = [sys.executable, __file__, f, "--one"] + (["--prepare"] if a.prepare else []) + (
             ["--trace"] if a.trace else []) + ["--solve", str(a.solve)]
@@ -95,7 +102,8 @@ def main() -> None:
         if r.returncode:
             print(r.stderr, file=sys.stderr)
             sys.exit(r.returncode)
-        print(r.stdout.strip())
+        print(r.stdout.strip(), flush=True)
+    print(f"load average {os.getloadavg()[0]:.1f} at the end")
 
 
 if __name__ == "__main__":
