@@ -41,11 +41,27 @@ _NUM_RE = re.compile(r"[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?
 
 
 @dataclass
+class _Coded:
+    """A column as its distinct cells: row r holds words[codes[r]] (stripped text; words may
+    repeat). A year of quarter-hours has ten million rows but few distinct periods, ids and
+    values: the cells are typed and checked once per word, and each bad row is still
+    reported by its own row (docs/performance.md, "Reading long horizons")."""
+    codes: np.ndarray  # one per row, the smallest integer type that holds them
+    words: np.ndarray  # object array of str
+
+    def __len__(self) -> int:
+        return len(self.codes)
+
+    def cells(self) -> np.ndarray:
+        return self.words[self.codes]
+
+
+@dataclass
 class _Table:
     file: str
     header_line: int
     header: list[str]
-    columns: list[np.ndarray]  # one object array of stripped strings per header column
+    columns: list  # per header column: an object array of stripped strings, or a _Coded
     lines: np.ndarray  # physical line number of each data row
 
 
@@ -206,9 +222,14 @@ def _bound_message(c: Col, v: float) -> str | None:
 
 
 def _typed_table(t: _Table, cols: list[Col], col: _Collector,
-                 unknown_hint: dict[str, str] | None = None) -> pd.DataFrame | None:
+                 unknown_hint: dict[str, str] | None = None,
+                 skip_absent: bool = False) -> pd.DataFrame | None:
     """Check header and cells; return a typed DataFrame with defaults filled, plus a line column.
-    unknown_hint: columns that are an error here (with the reason) rather than ignored."""
+    unknown_hint: columns that are an error here (with the reason) rather than ignored.
+    skip_absent: optional columns the header lacks get no column (override tables: an absent
+    column keeps every static value, and a year of NaN columns would cost gigabytes).
+    A _Coded column's text columns come back as pandas Categorical (codes, not one string
+    per row); its number and flag columns as plain arrays."""
     header_line = t.header_line
     known = {c.name for c in cols}
     ok = True
@@ -229,11 +250,19 @@ def _typed_table(t: _Table, cols: list[Col], col: _Collector,
     if not ok:
         return None
     pos = {h: k for k, h in enumerate(t.header)}
-    lines = np.asarray(t.lines, dtype=np.int64)
+    lines = np.asarray(t.lines)  # int64 from CSV, int32 from Parquet (half the memory)
     n = len(lines)
     df = pd.DataFrame(index=range(n))
     for c in cols:  # column by column, vectorised; a loop only over the bad cells
+        if c.name not in pos and skip_absent and not c.required:
+            continue
         raw = t.columns[pos[c.name]] if c.name in pos else np.full(n, "", dtype=object)
+        if isinstance(raw, _Coded) and c.kind == "id":
+            raw = raw.cells()  # unique ids: one word per row anyway
+        if isinstance(raw, _Coded):
+            df[c.name] = _typed_coded(c, raw, lines, t.file, col)
+            t.columns[pos[c.name]] = None  # consumed: the table is read once (no two copies)
+            continue
         empty = raw == ""
         if c.required:
             for r in np.nonzero(empty)[0]:
@@ -246,6 +275,37 @@ def _typed_table(t: _Table, cols: list[Col], col: _Collector,
             df[c.name] = _typed_bool(c, raw, empty, lines, t.file, col)
     df["_line"] = lines
     return df
+
+
+def _typed_coded(c: Col, raw: _Coded, lines, file, col):
+    """One _Coded column typed word by word; every problem is reported on each row holding
+    the bad word, in row order, with the message the row-by-row path gives."""
+    codes, words = raw.codes, raw.words
+    empty_w = words == ""
+    if c.required:
+        for r in np.nonzero(empty_w[codes])[0]:
+            col.error(file, "value is required", int(lines[r]), c.name)
+    if c.kind == "text":
+        vals = np.where(empty_w, c.default if c.default is not None else "", words)
+        # distinct words of the used codes only: a Categorical needs unique categories, and a
+        # word no row holds (an unused Parquet dictionary entry) must not reach the checks
+        used = np.nonzero(np.bincount(codes, minlength=len(words)))[0]
+        new, cats = pd.factorize(vals[used].astype(object))
+        remap = np.zeros(len(words), dtype=np.int32)
+        remap[used] = new
+        return pd.Categorical.from_codes(remap[codes], categories=pd.Index(cats, dtype=object))
+    if c.kind == "float":
+        return _typed_float(c, words, empty_w, lines, file, col, codes)
+    return _typed_bool(c, words, empty_w, lines, file, col, codes)
+
+
+def _rows(bad: np.ndarray, codes: np.ndarray | None) -> np.ndarray:
+    """Rows holding a bad cell: `bad` is per row, or per word when codes are given."""
+    return np.nonzero(bad if codes is None else bad[codes])[0]
+
+
+def _word(codes: np.ndarray | None, r):
+    return r if codes is None else codes[r]
 
 
 def _typed_text(c: Col, raw, empty, lines, file, col) -> np.ndarray:
@@ -262,7 +322,9 @@ def _typed_text(c: Col, raw, empty, lines, file, col) -> np.ndarray:
     return vals
 
 
-def _typed_float(c: Col, raw, empty, lines, file, col) -> np.ndarray:
+def _typed_float(c: Col, raw, empty, lines, file, col, codes=None) -> np.ndarray:
+    """Numbers of one column. With codes, raw and empty are per distinct word and row r holds
+    word codes[r]: each word is parsed and checked once, each bad row still reported."""
     n = len(raw)
     num = np.full(n, np.nan)
     given_raw = raw[~empty]
@@ -276,8 +338,9 @@ def _typed_float(c: Col, raw, empty, lines, file, col) -> np.ndarray:
         sel = ok_fmt & ~empty
         num[sel] = raw[sel].astype(float)
     bad = ~empty & (~ok_fmt | ~np.isfinite(num))
-    for r in np.nonzero(bad)[0]:
-        col.error(file, f"{_not_a_number(raw[r], bool(ok_fmt[r]))}: '{raw[r][:40]}'",
+    for r in _rows(bad, codes):
+        w = _word(codes, r)
+        col.error(file, f"{_not_a_number(raw[w], bool(ok_fmt[w]))}: '{raw[w][:40]}'",
                   int(lines[r]), c.name)
     default = np.nan if c.default is None else float(c.default)
     vals = np.where(empty | bad, default, num)
@@ -291,24 +354,43 @@ def _typed_float(c: Col, raw, empty, lines, file, col) -> np.ndarray:
         if _bounded(c):
             out |= (vals != 0) & (np.abs(vals) < TINY)
     suspect = given & out if c.check is None else given
-    for r in np.nonzero(suspect)[0]:
-        msg = _bound_message(c, vals[r])
+    if codes is None:
+        for r in np.nonzero(suspect)[0]:
+            msg = _bound_message(c, vals[r])
+            if msg is None and c.check is not None:
+                msg = c.check(vals[r])
+            if msg is not None:
+                col.error(file, f"{msg} (got {raw[r]})", int(lines[r]), c.name)
+        return vals.astype(float)
+    msgs = {}  # word -> message, then every row holding a bad word, in row order
+    for w in np.nonzero(suspect)[0]:
+        msg = _bound_message(c, vals[w])
         if msg is None and c.check is not None:
-            msg = c.check(vals[r])
+            msg = c.check(vals[w])
         if msg is not None:
-            col.error(file, f"{msg} (got {raw[r]})", int(lines[r]), c.name)
-    return vals.astype(float)
+            msgs[w] = msg
+    if msgs:
+        bad_w = np.zeros(n, dtype=bool)
+        bad_w[list(msgs)] = True
+        for r in _rows(bad_w, codes):
+            w = codes[r]
+            col.error(file, f"{msgs[w]} (got {raw[w]})", int(lines[r]), c.name)
+    return vals.astype(float)[codes]
 
 
-def _typed_bool(c: Col, raw, empty, lines, file, col):
+def _typed_bool(c: Col, raw, empty, lines, file, col, codes=None):
+    """Flags of one column; with codes, raw and empty are per word as in _typed_float."""
     low = pd.Series(raw, dtype=object).str.lower()
     is_t = low.isin(TRUE_WORDS).to_numpy()
     is_f = low.isin(FALSE_WORDS).to_numpy()
     bad = ~empty & ~is_t & ~is_f
-    for r in np.nonzero(bad)[0]:
-        col.error(file, f"expected true or false, got '{raw[r][:40]}'", int(lines[r]), c.name)
+    for r in _rows(bad, codes):
+        w = _word(codes, r)
+        col.error(file, f"expected true or false, got '{raw[w][:40]}'", int(lines[r]), c.name)
+    if codes is not None:
+        is_t, is_f = is_t[codes], is_f[codes]
     if c.default is None:
-        v = np.full(len(raw), None, dtype=object)
+        v = np.full(len(is_t), None, dtype=object)
         v[is_t] = True
         v[is_f] = False
         return pd.Series(v, dtype=object)

@@ -6,7 +6,7 @@ columns and reports each bad cell by file, row and column. After it the units ta
 `units_by_period.csv` override table) carries the agreed columns:
   provides (bool: may provide at all), provides_always (bool: governor on by obligation),
   provides_up, provides_down (bool: directions in which it holds headroom and responds).
-Override tables keep None where a period keeps the static value.
+Override tables keep a missing flag (pd.NA) where a period keeps the static value.
 """
 
 from __future__ import annotations
@@ -34,22 +34,26 @@ PROVIDES_COLS = ("provides", "provides_always", "provides_up", "provides_down")
 
 def parse_provides(raw, lines, file: str, col, keep_empty: bool = False) -> dict[str, np.ndarray]:
     """The four agreed columns from the `provides` words (case-insensitive). Empty cells give
-    the default (true) or, with keep_empty (override tables), None: keep the static value."""
-    words = pd.Series([str(x).strip().lower() for x in np.asarray(raw, dtype=object)],
-                      dtype=object)
-    empty = (words == "").to_numpy()
-    known = words.isin(PROVIDES_WORDS).to_numpy()
+    the default (true) or, with keep_empty (override tables), missing (nullable boolean
+    arrays, two bytes a row): keep the static value. Each distinct cell is parsed once (a year
+    of quarter-hours repeats a few words ten million times); every bad row is still reported.
+    raw: the cells, or a Categorical of them (the Parquet reader's)."""
+    if isinstance(raw, pd.Categorical) and not (raw.codes < 0).any():
+        codes, cells = raw.codes, np.asarray(raw.categories, dtype=object)
+    else:
+        codes, cells = pd.factorize(np.asarray(raw, dtype=object), use_na_sentinel=False)
+    words = pd.Series([str(x).strip().lower() for x in cells], dtype=object)
+    empty = (words == "").to_numpy()[codes]
+    known = words.isin(PROVIDES_WORDS).to_numpy()[codes]
     for r in np.nonzero(~empty & ~known)[0]:
         col.error(file, f"expected true, false, always, up or down, got '{str(raw[r])[:40]}'",
                   int(lines[r]), "provides")
     table = np.array([PROVIDES_WORDS.get(w, PROVIDES_WORDS["true"]) for w in words],
-                     dtype=bool).reshape(len(words), 4)
+                     dtype=bool).reshape(len(words), 4)[codes]
     out = {}
     for k, name in enumerate(PROVIDES_COLS):
         if keep_empty:
-            v = np.where(empty, None, table[:, k]).astype(object)
-            v[~empty] = table[~empty, k].astype(bool)
-            out[name] = v
+            out[name] = pd.arrays.BooleanArray(table[:, k].copy(), empty.copy())
         else:
             out[name] = table[:, k].copy()
     return out
@@ -66,10 +70,10 @@ def check_products(folder: Path, units: pd.DataFrame | None, events: pd.DataFram
     ser = series_raw.get("units")
     _check_energy(folder, units, ser, settings, col)
     if ser is not None and "provides" in ser.columns:
-        for name, v in parse_provides(ser["provides"].to_numpy(object), ser["_line"].to_numpy(),
-                                      str(folder / "units_by_period.csv"), col,
+        file = ser.attrs.get("file", str(folder / "units_by_period.csv"))  # .csv or .parquet
+        for name, v in parse_provides(ser["provides"].array, ser["_line"].to_numpy(), file, col,
                                       keep_empty=True).items():
-            ser[name] = pd.Series(v, index=ser.index, dtype=object)
+            ser[name] = pd.Series(v, index=ser.index)
 
 
 def _check_energy(folder: Path, units, ser, settings, col) -> None:
@@ -79,6 +83,7 @@ def _check_energy(folder: Path, units, ser, settings, col) -> None:
     for file, df in (("units.csv", units), ("units_by_period.csv", ser)):
         if df is None:
             continue
+        file = df.attrs.get("file", file)  # the file actually read (.csv or .parquet)
         for name in ENERGY_COLS:
             if name in df.columns and df[name].notna().any():
                 r = int(np.argmax(df[name].notna().to_numpy()))

@@ -122,7 +122,8 @@ def load_case(path: str | Path) -> Case:
                                             default=math.nan if c.kind == "float" else None)
                         for c in cols if c.name in may_vary]
                 df = _typed_table(t, [Col("period", "text", True), Col(idc, "text", True)]
-                                  + over, col, unknown_hint=series_hints(key))
+                                  + over, col, unknown_hint=series_hints(key),
+                                  skip_absent=True)
                 if df is not None:
                     df.attrs["file"] = str(p)  # messages name the file actually read
                     series_raw[key] = df

@@ -13,10 +13,13 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
 
 from optreserve.case.checks import check_reactance_spread
 from optreserve.case.columns import AREA_COLS, LINK_COLS, UNIT_COLS, series_columns
-from optreserve.case.csvio import _read_csv, _Table
+from optreserve.case.csvio import _Coded, _read_csv, _Table
 from optreserve.case.problems import MAX_PROBLEMS, _Collector, suggest
 
 SERIES = {"units": ("unit", UNIT_COLS), "areas": ("area", AREA_COLS),
@@ -47,30 +50,36 @@ def _check_series(folder, series_raw, units, areas, links, events, settings, col
     for key, df in series_raw.items():
         idc = SERIES[key][0]
         file = df.attrs.get("file", str(folder / f"{key}_by_period.csv"))
-        per_arr = df["period"].to_numpy(object)
-        id_arr = df[idc].to_numpy(object)
         line_arr = df["_line"].to_numpy()
-        for per in dict.fromkeys(per_arr):
-            k = _period_key(per)
-            if k is None:
-                first = int(line_arr[np.nonzero(per_arr == per)[0][0]])
-                col.error(file, f"period '{per[:40]}' is neither an integer nor an ISO-8601 "
-                          "timestamp", first, "period")
-                bad = True
+        # integer codes of the period and id cells: every check below runs on the distinct
+        # labels and on integers, never on one Python object per row
+        per_c, per_u = _codes(df["period"])
+        id_c, id_u = _codes(df[idc])
+        bad_per = []
+        for k, per in enumerate(per_u):
+            pk = _period_key(per)
+            if pk is None:
+                bad_per.append(k)
             else:
-                keys[per] = k
-        for r in np.nonzero(~pd.Series(id_arr).isin(ids[key]).to_numpy())[0][:MAX_PROBLEMS]:
-            col.error(file, f"unknown {idc} '{id_arr[r]}' (not in {key}.csv)"
-                      + suggest(str(id_arr[r]), ids[key]), int(line_arr[r]), idc)
-        dup = df.duplicated(subset=["period", idc], keep="first").to_numpy()
-        if dup.any():
-            first_line = {(p_, i_): ln for p_, i_, ln, d_ in zip(per_arr, id_arr, line_arr, dup)
-                          if not d_}
-            for r in np.nonzero(dup)[0][:MAX_PROBLEMS]:
-                col.error(file, f"duplicate row for period '{per_arr[r]}' and {idc} "
-                          f"'{id_arr[r]}' (first at row {first_line[(per_arr[r], id_arr[r])]})",
-                          int(line_arr[r]), idc)
-        sets[key] = set(df["period"])
+                keys[per] = pk
+        first_rows = sorted((int(np.argmax(per_c == k)), k) for k in bad_per)  # error path
+        for r, k in first_rows:  # in the order the labels first appear
+            col.error(file, f"period '{per_u[k][:40]}' is neither an integer nor an ISO-8601 "
+                      "timestamp", int(line_arr[r]), "period")
+            bad = True
+        unknown = ~pd.Index(id_u, dtype=object).isin(ids[key])
+        if unknown.any():
+            for r in np.nonzero(unknown[id_c])[0][:MAX_PROBLEMS]:
+                w = id_u[id_c[r]]
+                col.error(file, f"unknown {idc} '{w}' (not in {key}.csv)"
+                          + suggest(str(w), ids[key]), int(line_arr[r]), idc)
+        pair = per_c.astype(np.int64) * max(1, len(id_u)) + id_c
+        for r in _duplicate_rows(pair)[:MAX_PROBLEMS]:
+            first = int(np.argmax(pair == pair[r]))  # error path only: a scan per reported row
+            col.error(file, f"duplicate row for period '{per_u[per_c[r]]}' and {idc} "
+                      f"'{id_u[id_c[r]]}' (first at row {line_arr[first]})",
+                      int(line_arr[r]), idc)
+        sets[key] = set(per_u)
     ev_file = str(folder / "events.csv")
     ev_periods = [(p, int(ln)) for p, ln in zip(events["period"], events["_line"]) if p]
     for per, line in ev_periods:
@@ -92,10 +101,13 @@ def _check_series(folder, series_raw, units, areas, links, events, settings, col
         ref = sets[names[0]]
         for other in names[1:]:
             if sets[other] != ref:
-                diff = sorted(ref.symmetric_difference(sets[other]), key=lambda p: keys[p][1])
-                col.error(str(folder / f"{other}_by_period.csv"), "periods differ from "
-                          f"{names[0]}_by_period.csv (e.g. '{diff[0]}'): every time-series file "
-                          "must list the same periods")
+                diff = sorted(ref.symmetric_difference(sets[other]),  # ties by label: one answer
+                              key=lambda p: (keys[p][1], p))
+                ref_file = series_raw[names[0]].attrs.get("file", f"{names[0]}_by_period.csv")
+                col.error(series_raw[other].attrs.get(
+                    "file", str(folder / f"{other}_by_period.csv")), "periods differ from "
+                    f"{Path(ref_file).name} (e.g. '{diff[0]}'): every time-series file "
+                    "must list the same periods")
                 return (), (), {}
         labels = ref
         for per, line in ev_periods:
@@ -124,31 +136,73 @@ def _check_series(folder, series_raw, units, areas, links, events, settings, col
         x0 = links["reactance_pu"].to_numpy(float)
         check_reactance_spread(series_raw["links"]["reactance_pu"].to_numpy(float),
                                series_raw["links"]["_line"].to_numpy(),
-                               str(folder / "links_by_period.csv"), col,
+                               series_raw["links"].attrs.get(
+                                   "file", str(folder / "links_by_period.csv")), col,
                                static=(float(x0.min()), float(x0.max())))
     out = {}
     for key, df in series_raw.items():
+        # the checked table in place of the read one (never both): codes back to one shared
+        # text per label, the line numbers go
         idc = SERIES[key][0]
-        keep = ["period", idc] + [c for c in df.columns if c in series_columns(key)]
-        out[key] = df[keep].reset_index(drop=True)
+        for c in ("period", idc):
+            if isinstance(df[c].dtype, pd.CategoricalDtype):
+                df[c] = np.asarray(df[c], dtype=object)
+        for c in [c for c in df.columns if c not in ("period", idc)
+                  and c not in series_columns(key)]:
+            del df[c]  # _line
+        out[key] = df
     return tuple(order), tuple(float(h) for h in hours), out
 
 
+def _codes(s: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """(codes, labels) of a text column: labels[codes[r]] is row r's cell, every label used."""
+    if isinstance(s.dtype, pd.CategoricalDtype):  # Parquet (csvio._typed_coded)
+        return s.cat.codes.to_numpy(), s.cat.categories.to_numpy(dtype=object)
+    codes, labels = pd.factorize(s.to_numpy(dtype=object))
+    return codes, np.asarray(labels, dtype=object)
+
+
+def _duplicate_rows(pair: np.ndarray) -> np.ndarray:
+    """Rows whose (period, id) code pair appeared on an earlier row. A count per pair settles
+    the usual case (no duplicate) in one pass and a small array."""
+    if not len(pair):
+        return np.zeros(0, dtype=np.int64)
+    top = int(pair.max()) + 1
+    if top <= 4 * len(pair) + 1024 and not (np.bincount(pair, minlength=top) > 1).any():
+        return np.zeros(0, dtype=np.int64)
+    return np.nonzero(pd.Series(pair).duplicated(keep="first").to_numpy())[0]
+
+
+_CHUNK = 1 << 20  # rows per pass of the bounds check: its float temporaries stay small
+
+
 def _check_unit_series(ser, units, file, col):
-    """output within [min_output, capacity] in every period, overrides applied (vectorised)."""
-    base = units.set_index("unit")
-    known = ser["unit"].isin(base.index).to_numpy()
-    s = ser[known]
-    b = base.loc[s["unit"]]
-    out = s["output_mw"].fillna(pd.Series(b["output_mw"].to_numpy(), index=s.index))
-    mn = s["min_output_mw"].fillna(pd.Series(b["min_output_mw"].to_numpy(), index=s.index))
-    cap = b["capacity_mw"].to_numpy()
-    bad = ~((mn.to_numpy() <= out.to_numpy()) & (out.to_numpy() <= cap))
-    for k in np.nonzero(bad)[0]:
-        r = s.iloc[k]
-        col.error(file, f"output_mw {out.iloc[k]:g} outside [min_output_mw {mn.iloc[k]:g}, "
-                  f"capacity_mw {cap[k]:g}] in period '{r['period']}'", int(r["_line"]),
-                  "output_mw")
+    """output within [min_output, capacity] in every period, overrides applied (vectorised,
+    a million rows at a time)."""
+    id_c, id_u = _codes(ser["unit"])
+    upos = pd.Index(units["unit"], dtype=object).get_indexer(id_u)  # -1: unknown unit
+    st_out = units["output_mw"].to_numpy(float)
+    st_min = units["min_output_mw"].to_numpy(float)
+    st_cap = units["capacity_mw"].to_numpy(float)
+    per_c, per_u = _codes(ser["period"])
+    lines = ser["_line"].to_numpy()
+    ov_out = ser["output_mw"].to_numpy(float) if "output_mw" in ser.columns else None
+    ov_min = ser["min_output_mw"].to_numpy(float) if "min_output_mw" in ser.columns else None
+    for a in range(0, len(ser), _CHUNK):
+        sl = slice(a, a + _CHUNK)
+        u = upos[id_c[sl]]
+        known = u >= 0
+        u = np.where(known, u, 0)
+        out = st_out[u] if ov_out is None else np.where(np.isnan(ov_out[sl]), st_out[u],
+                                                        ov_out[sl])
+        mn = st_min[u] if ov_min is None else np.where(np.isnan(ov_min[sl]), st_min[u],
+                                                       ov_min[sl])
+        cap = st_cap[u]
+        bad = known & ~((mn <= out) & (out <= cap))
+        for k in np.nonzero(bad)[0]:
+            col.error(file, f"output_mw {out[k]:g} outside [min_output_mw {mn[k]:g}, "
+                      f"capacity_mw {cap[k]:g}] in period '{per_u[per_c[a + k]]}'",
+                      int(lines[a + k]), "output_mw")
 
 
 def _series_file(csv_path: Path, col: _Collector, lab):
@@ -166,18 +220,53 @@ def _series_file(csv_path: Path, col: _Collector, lab):
 def _read_parquet(path: Path, label: str, col: _Collector) -> _Table | None:
     """A Parquet time series as the CSV reader's _Table (every cell as text), so that each
     check and message is the CSV one. Rows are numbered as in the same table written as CSV
-    (header row 1, first record row 2)."""
+    (header row 1, first record row 2). Each column comes as its distinct cells (_Coded):
+    text columns are read as Parquet dictionaries, so no text is made per row."""
     try:
-        df = pd.read_parquet(path)
+        pf = pq.ParquetFile(path, read_dictionary=[
+            f.name for f in pq.read_schema(path)
+            if pa.types.is_string(f.type) or pa.types.is_large_string(f.type)])
+        schema = pf.schema_arrow
+        # a pandas index written with the table is no column of it (as pandas.read_parquet
+        # reads it)
+        index_cols = {c for c in (schema.pandas_metadata or {}).get("index_columns", [])
+                      if isinstance(c, str)}
+        names = [c for c in schema.names if c not in index_cols]
+        # one column at a time: only one column's Arrow buffers are alive at once
+        columns = [_coded_column(pf.read(columns=[name], use_threads=False).column(0))
+                   for name in names]
+        n = pf.metadata.num_rows
+        del pf
+        # Arrow's allocator keeps freed buffers for reuse; the rest of the run never reads
+        # Parquet again, so they go back now (tens of MB after a year of quarter-hours)
+        pa.default_memory_pool().release_unused()
     except Exception as exc:  # noqa: BLE001 - pyarrow raises several kinds for a bad file
         col.error(label, f"cannot be read as Parquet ({type(exc).__name__}: {exc})"[:300])
         return None
-    header = [str(c) for c in df.columns]
-    columns = []
-    for c in df.columns:
-        # one text per distinct value, shared by its cells: a year of quarter-hours has ten
-        # million rows but few distinct periods, ids and values (memory, docs/performance.md)
-        codes, uniq = pd.factorize(df[c], use_na_sentinel=True)
-        words = np.append(pd.Series(uniq).astype(str).str.strip().to_numpy(dtype=object), "")
-        columns.append(words[codes])  # code -1 (missing) takes the last word, ""
-    return _Table(label, 1, header, columns, np.arange(len(df), dtype=np.int64) + 2)
+    header = [str(c) for c in names]
+    lines = np.arange(2, n + 2, dtype=np.int32 if n < 2**31 - 2 else np.int64)
+    return _Table(label, 1, header, columns, lines)
+
+
+def _coded_column(arr: pa.ChunkedArray) -> _Coded:
+    """One Parquet column as row codes into its distinct cells written as text (stripped),
+    encoded by Arrow (int32 codes, no hash table of Python objects); a missing cell (null,
+    NaN) is the empty word, as pandas.read_parquet would give it."""
+    if not pa.types.is_dictionary(arr.type):
+        arr = arr.dictionary_encode()
+    arr = arr.unify_dictionaries()
+    value_type = arr.type.value_type
+    if not arr.num_chunks:
+        return _Coded(np.zeros(0, dtype=np.int32), np.array([""], dtype=object))
+    dictionary = arr.chunk(0).dictionary
+    if pa.types.is_integer(value_type) and arr.null_count:
+        dictionary = dictionary.cast(pa.float64())  # pandas reads such a column as floats
+    k = len(dictionary)
+    small = np.int8 if k < 127 else np.int16 if k < 32767 else np.int32  # k + 1 words
+    codes = np.concatenate([pc.fill_null(c.indices, k).to_numpy().astype(small, copy=False)
+                            for c in arr.chunks])
+    del arr
+    uniq = pd.Series(dictionary.to_pandas())
+    words = uniq.astype(str).str.strip().to_numpy(dtype=object)
+    words[uniq.isna().to_numpy()] = ""
+    return _Coded(codes, np.append(words, ""))  # code k (null) takes the last word, ""
