@@ -246,16 +246,63 @@ def _num(v):
     return None if not np.isfinite(v) else v
 
 
+# Rows formatted and written at a time: the formatted cells of a year of quarter-hours
+# (10 million rows) would take gigabytes at once; in slices the peak stays that of a slice.
+WRITE_ROWS = 200_000
+
+
 def write_table(df: pd.DataFrame, path: Path, exact=()) -> None:
     """Stable CSV: fixed column order, 6 decimals, no negative zero, true/false booleans,
     empty cells for missing values; cells written so they read back the same and text no
     spreadsheet evaluates (output/cells.py; `exact`: columns echoing an input, every
-    significant digit kept). The whole table is formatted by one string-formatting call
-    (pandas' float formatting is the slow part of writing a day of results)."""
-    n = len(df)
+    significant digit kept). Each slice of WRITE_ROWS rows is formatted by one
+    string-formatting call (pandas' float formatting is the slow part of writing a day of
+    results); whether anything needs quoting is decided for the whole table first, so the
+    file is the same whatever the slices."""
     header = safe_header([str(c) for c in df.columns])
-    grid = np.empty((n, len(header)), dtype=object)
-    specs, text_cols = [], []
+    special = re.compile(r'[,"\r\n]')
+    # a cell's text depends on its value alone: the distinct values of each text column
+    plain = not special.search("\x1f".join(header)) and not any(
+        special.search("\x1f".join(_cells(pd.Series(df[c].unique(), dtype=df[c].dtype),
+                                         c in exact)))
+        for c in df.columns if not _numeric_column(df[c]))
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = None if plain else csv.writer(fh, lineterminator="\n")
+        if plain:
+            fh.write(",".join(header) + "\n")
+        else:
+            w.writerow(header)
+        for a in range(0, len(df), WRITE_ROWS):
+            grid, specs = _format_rows(df.iloc[a:a + WRITE_ROWS], exact)
+            if plain:  # nothing to quote: one formatting pass over the slice
+                fh.write(((",".join(specs) + "\n") * len(grid)) % tuple(grid.ravel().tolist()))
+            else:
+                for row in grid.tolist():
+                    w.writerow([x if isinstance(x, str) else f"{x:.6f}" for x in row])
+
+
+def _numeric_column(col: pd.Series) -> bool:
+    return col.to_numpy().dtype == bool or pd.api.types.is_float_dtype(col)
+
+
+def _cells(col: pd.Series, exact: bool) -> np.ndarray:
+    """The written text of a text column (missing values empty, spreadsheet-safe)."""
+    v = col.to_numpy()
+    missing = col.isna().to_numpy()
+    cells = col.astype(str).to_numpy(dtype=object)
+    if missing.any():
+        cells[missing] = ""
+    if v.dtype == object:  # text (not numbers) that a spreadsheet would evaluate
+        is_text = np.array([isinstance(x, str) for x in v], dtype=bool)
+        cells = np.where(is_text, spreadsheet_safe(cells), cells)
+    return cells
+
+
+def _format_rows(df: pd.DataFrame, exact=()) -> tuple[np.ndarray, list[str]]:
+    """The cells of df's rows (object grid) and each column's format spec."""
+    n = len(df)
+    grid = np.empty((n, df.shape[1]), dtype=object)
+    specs = []
     for k, c in enumerate(df.columns):
         col = df[c]
         v = col.to_numpy()
@@ -279,25 +326,6 @@ def write_table(df: pd.DataFrame, path: Path, exact=()) -> None:
                 grid[:, k] = r
                 specs.append("%.6f")
         else:
-            missing = col.isna().to_numpy()
-            cells = col.astype(str).to_numpy(dtype=object)
-            if missing.any():
-                cells[missing] = ""
-            if v.dtype == object:  # text (not numbers) that a spreadsheet would evaluate
-                is_text = np.array([isinstance(x, str) for x in v], dtype=bool)
-                cells = np.where(is_text, spreadsheet_safe(cells), cells)
-            grid[:, k] = cells
-            text_cols.append(cells)
+            grid[:, k] = _cells(col, c in exact)
             specs.append("%s")
-    special = re.compile(r'[,"\r\n]')
-    plain = not any(special.search("\x1f".join(c)) for c in [header] + text_cols)
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        if plain:  # nothing to quote: one formatting pass over the whole table
-            fh.write(",".join(header) + "\n")
-            if n:
-                fh.write(((",".join(specs) + "\n") * n) % tuple(grid.ravel().tolist()))
-        else:
-            w = csv.writer(fh, lineterminator="\n")
-            w.writerow(header)
-            for row in grid.tolist():
-                w.writerow([x if isinstance(x, str) else f"{x:.6f}" for x in row])
+    return grid, specs

