@@ -37,7 +37,7 @@ def _rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux: KiB
 
 
-def one(folder: str, prepare: bool, trace: bool, solve: int) -> dict:
+def one(folder: str, prepare: bool, trace: bool, solve: int, write: str | None = None) -> dict:
     import optreserve  # imports counted in base_mb, not in the read
     from optreserve.case.reader import load_case
     from optreserve.model import horizon
@@ -65,6 +65,10 @@ def one(folder: str, prepare: bool, trace: bool, solve: int) -> dict:
                    cost=res.objective_total, peak_solve_mb=round(_rss_mb()),
                    peak_worker_mb=round(resource.getrusage(resource.RUSAGE_CHILDREN)
                                         .ru_maxrss / 1024.0))
+        if write:  # the result files as `optreserve solve --out` writes them
+            t0 = time.perf_counter()
+            res.write(write)
+            out.update(write_s=round(time.perf_counter() - t0, 2), peak_write_mb=round(_rss_mb()))
     if trace:
         import tracemalloc
         _, peak = tracemalloc.get_traced_memory()
@@ -86,10 +90,12 @@ def main() -> None:
     ap.add_argument("--solve", type=int, default=0, metavar="WORKERS",
                     help="then solve the case (as horizon_blocks.py, without the generation "
                     "in the same process) on WORKERS Dask workers (1: in this process)")
+    ap.add_argument("--write", metavar="DIR", help="after --solve, write the result files to "
+                    "DIR (a new folder per case: DIR/<case name>)")
     ap.add_argument("--one", action="store_true", help=argparse.SUPPRESS)  # the child process
     a = ap.parse_args()
     if a.one:
-        print(json.dumps(one(a.folders[0], a.prepare, a.trace, a.solve)))
+        print(json.dumps(one(a.folders[0], a.prepare, a.trace, a.solve, a.write)))
         return
     from machine import cpu_model
 
@@ -97,7 +103,8 @@ def main() -> None:
           f"{platform.python_version()}, load average {os.getloadavg()[0]:.1f} at start")
     for f in a.folders:  # a fresh process per case: its peak is its own
         cmd = [sys.executable, __file__, f, "--one"] + (["--prepare"] if a.prepare else []) + (
-            ["--trace"] if a.trace else []) + ["--solve", str(a.solve)]
+            ["--trace"] if a.trace else []) + ["--solve", str(a.solve)] + (
+            ["--write", str(Path(a.write) / Path(f).name)] if a.write else [])
         r = subprocess.run(cmd, capture_output=True, text=True, check=False)
         if r.returncode:
             print(r.stderr, file=sys.stderr)
