@@ -98,8 +98,8 @@ def test_write_table_round_trip_property(tmp_path):
 
 @pytest.mark.parametrize("quoted", [False, True])
 def test_a_table_written_in_slices_is_the_same_file(tmp_path, monkeypatch, quoted):
-    """write_table formats WRITE_ROWS rows at a time (memory on long horizons): slices of 3
-    rows give the same bytes as one slice, with missing values in some slices only, a
+    """write_table formats WRITE_CELLS cells (whole rows) at a time (memory on long
+    horizons): slices of 3 rows give the same bytes as one slice, with missing values in some slices only, a
     huge value, booleans and (quoted) a text cell that needs CSV quoting in one slice; the
     standard csv module reads the values back."""
     from optreserve.output import results
@@ -114,7 +114,7 @@ def test_a_table_written_in_slices_is_the_same_file(tmp_path, monkeypatch, quote
     df = pd.DataFrame({"unit": text, "v": vals, "ok": np.arange(n) % 2 == 0,
                        "period": np.arange(n)})
     write_table(df, tmp_path / "one.csv")
-    monkeypatch.setattr(results, "WRITE_ROWS", 3)
+    monkeypatch.setattr(results, "WRITE_CELLS", 3 * df.shape[1])
     write_table(df, tmp_path / "sliced.csv")
     assert (tmp_path / "one.csv").read_bytes() == (tmp_path / "sliced.csv").read_bytes()
     with open(tmp_path / "sliced.csv", newline="", encoding="utf-8") as fh:

@@ -246,16 +246,17 @@ def _num(v):
     return None if not np.isfinite(v) else v
 
 
-# Rows formatted and written at a time: the formatted cells of a year of quarter-hours
-# (10 million rows) would take gigabytes at once; in slices the peak stays that of a slice.
-WRITE_ROWS = 200_000
+# Cells formatted and written at a time: the formatted cells of a year of quarter-hours (10
+# million rows, or the 35 040 columns of its wide schedule) would take gigabytes at once; in
+# slices of whole rows the peak stays that of a slice.
+WRITE_CELLS = 2_000_000
 
 
 def write_table(df: pd.DataFrame, path: Path, exact=()) -> None:
     """Stable CSV: fixed column order, 6 decimals, no negative zero, true/false booleans,
     empty cells for missing values; cells written so they read back the same and text no
     spreadsheet evaluates (output/cells.py; `exact`: columns echoing an input, every
-    significant digit kept). Each slice of WRITE_ROWS rows is formatted by one
+    significant digit kept). Each slice of whole rows (WRITE_CELLS cells) is formatted by one
     string-formatting call (pandas' float formatting is the slow part of writing a day of
     results); whether anything needs quoting is decided for the whole table first, so the
     file is the same whatever the slices."""
@@ -272,8 +273,9 @@ def write_table(df: pd.DataFrame, path: Path, exact=()) -> None:
             fh.write(",".join(header) + "\n")
         else:
             w.writerow(header)
-        for a in range(0, len(df), WRITE_ROWS):
-            grid, specs = _format_rows(df.iloc[a:a + WRITE_ROWS], exact)
+        step = max(1, WRITE_CELLS // max(1, df.shape[1]))
+        for a in range(0, len(df), step):
+            grid, specs = _format_rows(df.iloc[a:a + step], exact)
             if plain:  # nothing to quote: one formatting pass over the slice
                 fh.write(((",".join(specs) + "\n") * len(grid)) % tuple(grid.ravel().tolist()))
             else:

@@ -104,7 +104,7 @@ def _solve_chain(cases: list[Case], kw: dict, warm: bool) -> list[Result]:
     for c in cases:
         r = solve(c, blocks=False, warm=_warm_from(out[-1] if out and warm else None), **kw)
         r.case = None  # the merged result carries the whole case; a block's is not sent back
-        out.append(r)
+        out.append(_compact(r))
         # a solved block's per-period matrices (a few MB a day) are not needed again: dropped
         # now, not when the whole horizon is done (28 days in one process: 599 -> 480 MB)
         c.__dict__.pop("_matrix_cache", None)
@@ -164,6 +164,32 @@ def _solve_dask(cases, kw, warm, workers, scheduler) -> list[Result]:
         return [r for k in sorted(done) for r in done[k]]
 
 
+_TABLES = ("allocation", "events", "links", "prices")
+
+
+def _compact(r: Result) -> Result:
+    """The block's text columns without missing cells as categories (a code per row
+    instead of an object per row): a year's block results travel and wait for the merge in
+    a fraction of the memory; merge() turns them back into the same text columns."""
+    for name in _TABLES:
+        df = getattr(r, name)
+        if df is None:
+            continue
+        for c in df.columns:
+            col = df[c]
+            if col.dtype == object and len(col) and not col.isna().any():
+                df[c] = col.astype("category")
+    return r
+
+
+def _text_again(df: pd.DataFrame) -> pd.DataFrame:
+    """Category columns (from _compact) back to text, sharing one string per label."""
+    for c in df.columns:
+        if isinstance(df[c].dtype, pd.CategoricalDtype):
+            df[c] = df[c].astype(object)
+    return df
+
+
 _WORST = ["optimal", "time_limit"]
 
 
@@ -171,7 +197,7 @@ def merge(case: Case, results: list[Result]) -> Result:
     """One Result for the whole horizon from the block results, in period order."""
     first = results[0]
     def cat(name):
-        return pd.concat([getattr(r, name) for r in results], ignore_index=True)
+        return _text_again(pd.concat([getattr(r, name) for r in results], ignore_index=True))
 
     statuses = [r.status for r in results]
     status = max(statuses, key=lambda s: _WORST.index(s.replace("_relaxed", ""))
