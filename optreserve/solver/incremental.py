@@ -271,8 +271,8 @@ def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
 # a Dask worker the points or blocks already fill the cores: one. OPTRESERVE_PRICE_THREADS
 # overrides.
 def price_threads() -> int:
-    env = os.environ.get("OPTRESERVE_PRICE_THREADS")
-    if env:
+    env = os.environ.get("OPTRESERVE_PRICE_THREADS", "").strip()
+    if env.isdigit():  # anything else: the default below
         return max(1, int(env))
     if "distributed" in sys.modules:
         try:
