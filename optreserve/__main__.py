@@ -1,3 +1,3 @@
-from optreserve.cli.app import main
+from optreserve.cli.app import run
 
-raise SystemExit(main())
+run()
