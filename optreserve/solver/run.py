@@ -178,8 +178,9 @@ def _time_budget(run: _Run):
 
 
 def _solve_pass(run: _Run, lp: LinearProgram, info: ModelInfo) -> Outcome:
-    """HiGHS on the pass's program, warm-started from the last pass (same columns) or from
-    the caller's warm start on the first."""
+    """HiGHS on the pass's program, warm-started from the last pass solved (its columns the
+    two programs share) or from the caller's warm start on the first; after the last nadir
+    loosening, the likeliest incremental-price re-solve is begun beside it (solver/ahead.py)."""
     h = run.history
     start = carry_start(*run.last, lp) if run.last is not None else None
     if start is None and run.warm is not None and not h:
