@@ -39,6 +39,11 @@ class NadirGuide:
     relaxed: bool = False
     cuts: list = field(default_factory=list)
 
+    def copy(self) -> NadirGuide:
+        """The guide as it stands (the solve loop goes on changing its own)."""
+        return NadirGuide(None if self.scale is None else np.array(self.scale, copy=True),
+                          self.relaxed, list(self.cuts))
+
 
 def _guide(scale) -> NadirGuide:
     if isinstance(scale, NadirGuide):

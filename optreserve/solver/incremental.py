@@ -8,8 +8,8 @@ is tight and that dual is 0 although a larger event costs real money. The increm
 
     (cost*(dP + step) - cost*(dP)) / step / h_t
 
-re-solves the whole problem, steps included, once per event instance (warm-started from the
-optimum). Both optima are taken at a tight gap (the solve's own optimum is the base when
+re-solves the whole problem, steps included, once per event instance (without a start, so
+that re-solves run in threads or begun ahead give the same values). Both optima are taken at a tight gap (the solve's own optimum is the base when
 HiGHS proved it to that gap, as it does when its search tree closes) of the model's own
 objective, and the difference of their real costs (headroom cost plus any change penalty,
 without the tie-break price on headroom) is reported. The tie-break can move each real cost
@@ -119,7 +119,7 @@ def optimal_cost(case, hz: Horizon, info: ModelInfo, start: np.ndarray | None,
     program has the flow rows); cost NaN when no allocation is found (inf when the problem
     is infeasible)."""
     from optreserve.solver.readback import dispatch_view, exact_points
-    from optreserve.solver.run import _needs_fixed_point, carry_start, overloads
+    from optreserve.solver.run import carry_start, settle_pass
 
     x_hat = np.asarray(info.x_hat, float).copy()
     flows = info.flows
@@ -138,21 +138,11 @@ def optimal_cost(case, hz: Horizon, info: ModelInfo, start: np.ndarray | None,
             return float("nan"), None, solve_s, flows
         last = (lp, out.x)
         inf.hz = dispatch_view(inf.hz, lp, out.x)
-        if not inf.flows and len(case.links):
-            pts = exact_points(inf, lp, out.x)
-            if not overloads(inf.hz, pts):
-                break
-            flows = True  # this optimum overloads a link: again with the flow rows
-            exact = np.abs(pts.deviation_hz)
-            x_hat = np.where((inf.hz.dP > 0) & np.isfinite(exact), exact, x_hat)
-            continue
-        if not _needs_fixed_point(inf):
+        verdict, x_hat = settle_pass(inf, exact_points(inf, lp, out.x),
+                                     PRICE_FIXED_POINT_TOL_HZ)  # as the solve's passes
+        if verdict == "settled":
             break
-        exact = np.abs(exact_points(inf, lp, out.x).deviation_hz)
-        live = (inf.hz.dP > 0) & np.isfinite(exact)
-        if np.all(np.abs(exact - x_hat)[live] <= PRICE_FIXED_POINT_TOL_HZ):
-            break
-        x_hat = np.where(live, exact, x_hat)
+        flows = flows or verdict == "overload"
     return real_cost(lp, hz, out.x), out.x, solve_s, flows
 
 
@@ -223,9 +213,7 @@ def incremental_prices(case, hz: Horizon, info: ModelInfo, x: np.ndarray,
     shortcut = not hz.co_opt and x0 is not None
     lp0, info0 = build_model(case, x_hat=info.x_hat, hz=hz, nadir_scale=nadir_scale,
                              flows=flows)
-    steps = price_steps(hz.dP)
-    if step_mw is not None:
-        steps = price_steps(hz.dP, step_mw)
+    steps = price_steps(hz.dP, step_mw)
     jobs = []  # (array, index, grown stacking, step): the re-solves still needed
     priced = (hz.dP > 0) & fixed
     met = (events_still_met(case, hz, info0, lp0, x0, np.where(priced, hz.dP + steps, hz.dP),

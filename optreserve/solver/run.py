@@ -156,7 +156,7 @@ def _build_pass(run: _Run):
                                            if run.iterations > 1 else ""))
     lp, info = build_model(run.case, x_hat=run.x_hat, relax=run.relax, hz=run.hz,
                            nadir_scale=run.nadir["guide"], flows=run.flows)
-    info.guide = snapshot(run.nadir["guide"])
+    info.guide = run.nadir["guide"].copy()  # the loop changes its own guide later
     if run.extend is not None:
         run.extend(lp, info)
     run.t_build += time.perf_counter() - t0
@@ -247,27 +247,18 @@ def _after_pass(run: _Run, lp: LinearProgram, info: ModelInfo, out: Outcome):
     progress.step("recomputing settled points independently")
     with run.clock("verify"):
         points = exact_points(info, lp, out.x)
-    exact = np.abs(points.deviation_hz)
-    live = info.hz.dP > 0
-    settled = np.where(live & np.isfinite(exact), exact, info.x_hat)
-    if flows_left_out(info) and overloads(info.hz, points):
-        # the allocation without flow rows overloads a link: solve again with them, at the
-        # settled points of this allocation (it is no answer: not kept in the history)
-        run.flows, run.x_hat = True, settled
+    verdict, guess = settle_pass(info, points, FIXED_POINT_TOL_HZ)
+    if verdict == "overload":  # no answer: not kept in the history
+        run.flows, run.x_hat = True, guess
         return None
     run.history.append((lp, info, out))
-    if not _needs_fixed_point(info):
-        # no row depends on the settled guess: the exact deviation is the model's own
-        info.x_hat = np.where(live, exact, info.x_hat)
-        return None if _nadir_round_timed(run, info, lp, out) else (lp, info, out, points)
-    if np.all(np.abs(exact - info.x_hat)[live] <= FIXED_POINT_TOL_HZ) or (
-            run.iterations >= FIXED_POINT_MAX_ITER):
-        if _nadir_round_timed(run, info, lp, out):
-            run.x_hat = settled
-            return None
-        return lp, info, out, points
-    run.x_hat = settled
-    return None
+    if verdict == "again" and run.iterations < FIXED_POINT_MAX_ITER:
+        run.x_hat = guess
+        return None
+    if _nadir_round_timed(run, info, lp, out):
+        run.x_hat = guess
+        return None
+    return lp, info, out, points
 
 
 def _nadir_round_timed(run: _Run, info: ModelInfo, lp: LinearProgram, out: Outcome) -> bool:
@@ -311,12 +302,26 @@ def _finish(run: _Run, lp: LinearProgram, info: ModelInfo, out: Outcome, points,
     return result
 
 
-def snapshot(guide):
-    """A copy of the nadir rows' guide as it stands (the loop changes its own later)."""
-    from optreserve.model.nadir import NadirGuide
-
-    return NadirGuide(scale=None if guide.scale is None else np.array(guide.scale, copy=True),
-                      relaxed=guide.relaxed, cuts=list(guide.cuts))
+def settle_pass(info: ModelInfo, points, tol_hz: float) -> tuple[str, np.ndarray]:
+    """What a pass's independently computed points (exact_points) say, and the settled guess
+    for another pass (its exact settled points):
+    "overload": its program left the flow rows out and a link overloads: solve again with
+      them (formulation.md 7a);
+    "settled": no row depends on the guess, or the guess is the exact point within tol_hz
+      (info.x_hat then is the exact point, so the optimiser's own figures are the exact
+      ones);
+    "again": the dead-band guess moved: solve again at the new one (section 7)."""
+    exact = np.abs(points.deviation_hz)
+    live = (info.hz.dP > 0) & np.isfinite(exact)
+    guess = np.where(live, exact, info.x_hat)
+    if flows_left_out(info) and overloads(info.hz, points):
+        return "overload", guess
+    if not _needs_fixed_point(info):
+        info.x_hat = guess
+        return "settled", guess
+    if np.all(np.abs(exact - info.x_hat)[live] <= tol_hz):
+        return "settled", guess
+    return "again", guess
 
 
 def lazy_flows(case: Case, hz: Horizon) -> bool:
